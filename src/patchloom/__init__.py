@@ -1,0 +1,37 @@
+"""patchloom: tar shards of images -> token-budget patch grids -> packed fixed-shape batches.
+
+The public API is what this module names; everything else may move.
+"""
+
+from __future__ import annotations
+
+from .batch import PackedBatch
+from .decode import DecodeError
+from .packing import Packer, pack
+from .patches import PatchSet, patchify, unpatchify
+from .pipeline import Ledger, Pipeline, SampleError, image_to_patches
+from .recipe import Recipe, RecipeError
+from .sizing import SizePlan, plan_size
+from .sources import SourceError, expand_shards
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "DecodeError",
+    "Ledger",
+    "PackedBatch",
+    "Packer",
+    "PatchSet",
+    "Pipeline",
+    "Recipe",
+    "RecipeError",
+    "SampleError",
+    "SizePlan",
+    "SourceError",
+    "expand_shards",
+    "image_to_patches",
+    "pack",
+    "patchify",
+    "plan_size",
+    "unpatchify",
+]

@@ -1,0 +1,1 @@
+"""Adapters that plug patchloom into other frameworks' data loaders."""

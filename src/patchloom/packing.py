@@ -1,0 +1,210 @@
+"""Packing: place the tokens of several images into fixed-length rows.
+
+`assign_rows` is the pure bin-packing step (sizes in, row assignment out); `build_batch` writes the
+arrays; `Packer` streams with a bounded look-ahead buffer and carries what does not fit; `pack` is
+the stateless form for a collate_fn.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from typing import Any
+
+import numpy as np
+
+from .batch import PackedBatch
+from .patches import PatchSet
+
+ALGORITHMS = ("first_fit", "best_fit", "in_order")
+
+
+def assign_rows(
+    sizes: Sequence[int],
+    *,
+    seq_len: int,
+    rows: int | None,
+    max_images_per_row: int | None = None,
+    algorithm: str = "first_fit",
+) -> tuple[list[list[int]], list[int]]:
+    """Assign items (by token count, in arrival order) to rows.
+
+    Returns (row -> item indices in placement order, indices left unplaced). With rows=None as many
+    rows as needed are opened and nothing is left over. Items larger than seq_len are an error.
+    """
+    if algorithm not in ALGORITHMS:
+        raise ValueError(f"packing algorithm must be one of {', '.join(ALGORITHMS)} (got {algorithm!r})")
+    cap = max_images_per_row if max_images_per_row is not None else seq_len
+    sizes = [int(s) for s in sizes]
+    for i, s in enumerate(sizes):
+        if s > seq_len:
+            raise ValueError(
+                f"an image of {s} tokens cannot fit a row of seq_len={seq_len}; "
+                "lower sizing.max_tokens or raise packing.seq_len"
+            )
+    space = np.full(rows if rows is not None else 0, seq_len, dtype=np.int64)  # room left per row
+    count = np.zeros_like(space)  # images per row
+    out: list[list[int]] = [[] for _ in range(len(space))]
+    left: list[int] = []
+    current = 0  # in_order: the row being filled
+    for i, s in enumerate(sizes):
+        if algorithm == "in_order":
+            if left:  # order is kept: once one item waits, everything after it waits too
+                left.append(i)
+                continue
+            while current < len(space) and (space[current] < s or count[current] >= cap):
+                current += 1
+            target = current if current < len(space) else -1
+        else:
+            fits = np.flatnonzero((space >= s) & (count < cap))
+            if fits.size == 0:
+                target = -1
+            elif algorithm == "first_fit":
+                target = int(fits[0])
+            else:  # best_fit: the row with the least room that still fits
+                target = int(fits[np.argmin(space[fits])])
+        if target < 0:
+            if rows is not None:
+                left.append(i)
+                continue
+            space = np.append(space, seq_len)
+            count = np.append(count, 0)
+            out.append([])
+            target = len(space) - 1
+            current = target
+        space[target] -= s
+        count[target] += 1
+        out[target].append(i)
+    return out, left
+
+
+def build_batch(
+    items: Sequence[PatchSet],
+    assignment: Sequence[Sequence[int]],
+    *,
+    seq_len: int,
+    max_images_per_row: int,
+    patch_dim: int | None = None,
+    dtype: Any = None,
+) -> PackedBatch:
+    """Write the fixed-shape arrays for a row assignment (padding: zeros, segment 0, label -1)."""
+    b, s, length = len(assignment), max_images_per_row, seq_len
+    if patch_dim is None or dtype is None:
+        if not items:
+            raise ValueError("an empty batch needs patch_dim and dtype")
+        patch_dim = items[0].patches.shape[1] if patch_dim is None else patch_dim
+        dtype = items[0].patches.dtype if dtype is None else dtype
+    patches = np.zeros((b, length, patch_dim), dtype=dtype)
+    segment_ids = np.zeros((b, length), dtype=np.int32)
+    coords = np.zeros((b, length, 2), dtype=np.int32)
+    grids = np.zeros((b, s, 2), dtype=np.int32)
+    labels = np.full((b, s), -1, dtype=np.int64)
+    keys: list[list[str]] = []
+    for r, row in enumerate(assignment):
+        if len(row) > s:
+            raise ValueError(f"row {r} holds {len(row)} images, more than max_images_per_row={s}")
+        pos = 0
+        row_keys = []
+        for j, idx in enumerate(row):
+            ps = items[idx]
+            n = ps.num_tokens
+            if ps.patches.shape[1] != patch_dim:
+                raise ValueError(
+                    f"image {ps.key!r} has patch dimension {ps.patches.shape[1]}, expected {patch_dim}: "
+                    "every image in a batch needs the same patch size and channels"
+                )
+            patches[r, pos : pos + n] = ps.patches
+            segment_ids[r, pos : pos + n] = j + 1
+            coords[r, pos : pos + n] = ps.coords
+            grids[r, j] = ps.grid
+            if ps.label is not None:
+                labels[r, j] = ps.label
+            row_keys.append(ps.key)
+            pos += n
+        keys.append(row_keys)
+    return PackedBatch(patches, segment_ids, coords, grids, labels, keys)
+
+
+def pack(
+    patchsets: Iterable[PatchSet],
+    seq_len: int,
+    rows: int | None = None,
+    *,
+    max_images_per_row: int | None = None,
+    algorithm: str = "first_fit",
+) -> PackedBatch:
+    """Pack PatchSets into one batch, statelessly (for a DataLoader collate_fn).
+
+    rows=None opens as many rows as needed; with a fixed `rows`, images that do not fit raise (a
+    stateless call has nowhere to carry them: use `Packer` to stream). max_images_per_row=None
+    sizes S to the fullest row; pass it to get the same S every batch.
+    """
+    items = list(patchsets)
+    if not items:
+        raise ValueError("pack() needs at least one PatchSet")
+    assignment, left = assign_rows(
+        [p.num_tokens for p in items], seq_len=seq_len, rows=rows,
+        max_images_per_row=max_images_per_row, algorithm=algorithm,
+    )
+    if left:
+        raise ValueError(
+            f"{len(left)} of {len(items)} images do not fit in {rows} rows of {seq_len} tokens; "
+            "pass rows=None, more rows, or stream with Packer to carry them into the next batch"
+        )
+    s = max_images_per_row if max_images_per_row is not None else max(len(r) for r in assignment)
+    return build_batch(items, assignment, seq_len=seq_len, max_images_per_row=s)
+
+
+class Packer:
+    """Streaming packer: fills `rows` rows of `seq_len` tokens from a look-ahead buffer.
+
+    Push PatchSets; whenever `buffer` images are waiting, one batch is assembled and the images that
+    did not fit stay for the next one (never dropped). `flush()` empties the buffer at the end of
+    the stream; every batch has the same [rows, seq_len] shape.
+    """
+
+    def __init__(
+        self,
+        *,
+        seq_len: int,
+        rows: int,
+        max_images_per_row: int = 16,
+        buffer: int = 64,
+        algorithm: str = "first_fit",
+    ) -> None:
+        if algorithm not in ALGORITHMS:
+            raise ValueError(f"packing algorithm must be one of {', '.join(ALGORITHMS)} (got {algorithm!r})")
+        self.seq_len = seq_len
+        self.rows = rows
+        self.max_images_per_row = max_images_per_row
+        self.buffer = max(1, buffer)
+        self.algorithm = algorithm
+        self.pending: list[PatchSet] = []
+
+    def push(self, item: PatchSet) -> list[PackedBatch]:
+        """Add one image; returns the batches that became ready (zero or one)."""
+        if item.num_tokens > self.seq_len:
+            raise ValueError(
+                f"image {item.key!r} has {item.num_tokens} tokens, more than seq_len={self.seq_len}; "
+                "lower sizing.max_tokens or raise packing.seq_len"
+            )
+        self.pending.append(item)
+        if len(self.pending) >= self.buffer:
+            return [self._assemble()]
+        return []
+
+    def flush(self) -> list[PackedBatch]:
+        """Pack everything still waiting, in as many fixed-shape batches as it takes."""
+        out = []
+        while self.pending:
+            out.append(self._assemble())
+        return out
+
+    def _assemble(self) -> PackedBatch:
+        items = self.pending
+        assignment, left = assign_rows(
+            [p.num_tokens for p in items], seq_len=self.seq_len, rows=self.rows,
+            max_images_per_row=self.max_images_per_row, algorithm=self.algorithm,
+        )
+        batch = build_batch(items, assignment, seq_len=self.seq_len, max_images_per_row=self.max_images_per_row)
+        self.pending = [items[i] for i in left]
+        return batch

@@ -1,0 +1,82 @@
+"""Patchify: an image array becomes a PatchSet of flattened patches with grid coordinates."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+
+@dataclass(slots=True, eq=False)  # arrays inside: compare fields explicitly
+class PatchSet:
+    """The tokens of one image.
+
+    `patches` is [N, D] with D = patch*patch*channels flattened in (patch_row, patch_col, channel)
+    order; `coords` is [N, 2] int32 (row, col) in the image's patch grid, raster order unless a
+    later stage reordered or dropped tokens (coords always travel with their patch).
+    """
+
+    patches: np.ndarray
+    coords: np.ndarray
+    grid: tuple[int, int]
+    key: str = ""
+    label: int | None = None
+    meta: dict[str, Any] = field(default_factory=dict)
+
+    def __post_init__(self) -> None:
+        if self.patches.ndim != 2 or self.coords.shape != (self.patches.shape[0], 2):
+            raise ValueError(
+                f"PatchSet {self.key!r}: patches must be [N, D] and coords [N, 2] "
+                f"(got {self.patches.shape} and {self.coords.shape})"
+            )
+
+    @property
+    def num_tokens(self) -> int:
+        return int(self.patches.shape[0])
+
+    def __len__(self) -> int:
+        return self.num_tokens
+
+
+def patchify(image: np.ndarray, patch_size: int) -> np.ndarray:
+    """[H, W, C] with H, W multiples of patch_size -> [(H/p)*(W/p), p*p*C], raster order, no copy loop."""
+    if image.ndim != 3:
+        raise ValueError(f"patchify needs an [H, W, C] array (got shape {image.shape})")
+    h, w, c = image.shape
+    p = patch_size
+    if h % p or w % p:
+        raise ValueError(f"image {w}x{h} is not a multiple of patch_size={p}; resize to a size plan first")
+    gh, gw = h // p, w // p
+    return np.ascontiguousarray(
+        image.reshape(gh, p, gw, p, c).transpose(0, 2, 1, 3, 4).reshape(gh * gw, p * p * c)
+    )
+
+
+def unpatchify(patches: np.ndarray, coords: np.ndarray, grid: tuple[int, int], patch_size: int,
+               channels: int = 3, fill: int | float = 0) -> np.ndarray:
+    """Place patches back at their coords on a [gh*p, gw*p, C] canvas (missing cells get `fill`)."""
+    gh, gw = grid
+    p = patch_size
+    canvas = np.full((gh, gw, p, p, channels), fill, dtype=patches.dtype)
+    canvas[coords[:, 0], coords[:, 1]] = patches.reshape(-1, p, p, channels)
+    return canvas.transpose(0, 2, 1, 3, 4).reshape(gh * p, gw * p, channels)
+
+
+def grid_coords(grid_h: int, grid_w: int) -> np.ndarray:
+    """[gh*gw, 2] int32 (row, col) in raster order."""
+    rows, cols = np.divmod(np.arange(grid_h * grid_w, dtype=np.int32), np.int32(grid_w))
+    return np.stack([rows, cols], axis=1)
+
+
+def normalize(patches: np.ndarray, mean: tuple[float, ...], std: tuple[float, ...], dtype: str) -> np.ndarray:
+    """uint8 patches -> (x/255 - mean)/std per channel in `dtype`; D's channel axis is the fastest."""
+    if dtype == "uint8":
+        return patches
+    channels = len(mean)
+    scale = (1.0 / (255.0 * np.asarray(std, dtype=np.float32)))
+    shift = (np.asarray(mean, dtype=np.float32) / np.asarray(std, dtype=np.float32))
+    d = patches.shape[-1]
+    reps = d // channels
+    out = patches.astype(np.float32) * np.tile(scale, reps) - np.tile(shift, reps)
+    return out.astype(dtype, copy=False)

@@ -1,0 +1,232 @@
+"""Size plans: which patch grid an image gets under a token budget, and the resize that applies it.
+
+The math is in plain functions (`best_grid`, `plan_size`); `resize_to_plan` applies a plan with
+Pillow. A plan is decided from the image header alone, before any pixel is decoded.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from PIL import Image
+
+from .recipe import SizingConfig
+
+#: Budget mode uses at least this share of max_tokens (the grid may trade a little aspect accuracy
+#: for it). With it, any aspect ratio within 1:4..4:1 gets a grid using >= 85 % of the budget.
+BUDGET_FILL = 0.85
+
+RESAMPLE = {
+    "nearest": Image.Resampling.NEAREST,
+    "box": Image.Resampling.BOX,
+    "bilinear": Image.Resampling.BILINEAR,
+    "hamming": Image.Resampling.HAMMING,
+    "bicubic": Image.Resampling.BICUBIC,
+    "lanczos": Image.Resampling.LANCZOS,
+}
+
+
+@dataclass(slots=True, frozen=True)
+class SizePlan:
+    """The decided size of one image: source crop, resized content size, and padded patch grid.
+
+    `crop` is (left, top, right, bottom) in source pixels. The cropped region is resized to
+    content_w x content_h pixels and placed at (pad_left, pad_top) in a canvas of
+    grid_w*patch_size x grid_h*patch_size; the rest is background (only with aspect_rule 'pad').
+    """
+
+    grid_h: int
+    grid_w: int
+    patch_size: int
+    crop: tuple[int, int, int, int]
+    content_h: int
+    content_w: int
+    pad_top: int = 0
+    pad_left: int = 0
+    budget: int = 0
+    source: tuple[int, int] = (0, 0)  # (height, width) of the image the plan was made for
+
+    @property
+    def tokens(self) -> int:
+        return self.grid_h * self.grid_w
+
+    @property
+    def height(self) -> int:
+        return self.grid_h * self.patch_size
+
+    @property
+    def width(self) -> int:
+        return self.grid_w * self.patch_size
+
+    @property
+    def aspect_error(self) -> float:
+        """|log| ratio between the grid's aspect and the (cropped) source's: 0 is exact."""
+        left, top, right, bottom = self.crop
+        return abs(math.log((self.grid_h / self.grid_w) / ((bottom - top) / (right - left))))
+
+    @property
+    def scale(self) -> float:
+        """Resize factor along the long side of the crop (>1 is an upscale)."""
+        left, top, right, bottom = self.crop
+        return max(self.content_h / (bottom - top), self.content_w / (right - left))
+
+    def to_dict(self) -> dict:
+        return {
+            "grid": [self.grid_h, self.grid_w],
+            "tokens": self.tokens,
+            "crop": list(self.crop),
+            "content": [self.content_h, self.content_w],
+            "pad": [self.pad_top, self.pad_left],
+            "aspect_error": round(self.aspect_error, 6),
+            "scale": round(self.scale, 6),
+            "budget": self.budget,
+        }
+
+
+def best_grid(aspect: float, lo: int, hi: int) -> tuple[int, int]:
+    """Integer grid (gh, gw) with lo <= gh*gw <= hi whose gh/gw is closest to `aspect` (= h/w).
+
+    Closeness is |log(gh/gw) - log(aspect)|; ties go to more tokens, then to the taller grid.
+    Vectorised over every grid height, so it is exact, not a heuristic.
+    """
+    if not 1 <= lo <= hi:
+        raise ValueError(f"need 1 <= lo <= hi for a token window (got lo={lo}, hi={hi})")
+    gh = np.arange(1, hi + 1, dtype=np.int64)
+    w_lo = np.maximum(1, -(-lo // gh))  # ceil(lo / gh)
+    w_hi = hi // gh
+    ok = w_lo <= w_hi
+    gh, w_lo, w_hi = gh[ok], w_lo[ok], w_hi[ok]
+    ideal = gh / aspect
+    log_target = np.log(aspect)
+    best_err = None
+    best_w = None
+    for cand in (np.floor(ideal), np.ceil(ideal)):
+        w = np.clip(cand.astype(np.int64), w_lo, w_hi)
+        err = np.abs(np.log(gh / w) - log_target)
+        if best_err is None:
+            best_err, best_w = err, w
+        else:
+            better = (err < best_err - 1e-12) | ((np.abs(err - best_err) <= 1e-12) & (w > best_w))
+            best_err = np.where(better, err, best_err)
+            best_w = np.where(better, w, best_w)
+    tokens = gh * best_w
+    # Round away floating noise so equal errors (e.g. 2/1 vs 4/2) tie exactly.
+    err_key = np.round(best_err, 12)
+    order = np.lexsort((-gh, -tokens, err_key))
+    i = order[0]
+    return int(gh[i]), int(best_w[i])
+
+
+def _budget_window(budget: int, min_tokens: int) -> tuple[int, int]:
+    lo = max(min_tokens, math.ceil(BUDGET_FILL * budget))
+    return min(lo, budget), budget
+
+
+def plan_grid(h: float, w: float, cfg: SizingConfig, budget: int | None = None) -> tuple[int, int]:
+    """Grid for an (already cropped) h x w region under the config's mode; budget overrides max_tokens."""
+    p = cfg.patch_size
+    budget = cfg.max_tokens if budget is None else budget
+    min_tokens = min(cfg.min_tokens, budget)
+    aspect = h / w
+    if cfg.mode == "fixed":
+        side = max(1, math.isqrt(budget))
+        return side, side
+    if cfg.mode in ("budget", "sampled"):
+        return best_grid(aspect, *_budget_window(budget, min_tokens))
+    # native: keep the native size rounded to patch multiples; only shrink when over budget,
+    # only grow when under min_tokens.
+    gh, gw = max(1, round(h / p)), max(1, round(w / p))
+    if gh * gw > budget:
+        return best_grid(aspect, *_budget_window(budget, min_tokens))
+    if gh * gw < min_tokens:
+        return best_grid(aspect, min_tokens, min(budget, max(min_tokens, math.ceil(min_tokens / BUDGET_FILL))))
+    return gh, gw
+
+
+def draw_budget(cfg: SizingConfig, rng: np.random.Generator | None) -> int:
+    """The token budget for one image: max_tokens, or a draw from `sampled` in sampled mode."""
+    if cfg.mode != "sampled":
+        return cfg.max_tokens
+    if rng is None:
+        raise ValueError("sizing mode 'sampled' draws a budget per image and needs a generator")
+    s = cfg.sampled
+    assert s is not None  # the recipe validator guarantees it
+    if s.range is not None:
+        return int(rng.integers(s.range[0], s.range[1] + 1))
+    weights = None
+    if s.weights is not None:
+        weights = np.asarray(s.weights, dtype=np.float64)
+        weights = weights / weights.sum()
+    return int(rng.choice(np.asarray(s.choices), p=weights))
+
+
+def plan_size(height: int, width: int, cfg: SizingConfig, rng: np.random.Generator | None = None) -> SizePlan:
+    """Decide the size plan for an image of `height` x `width` pixels (display orientation)."""
+    if height < 1 or width < 1:
+        raise ValueError(f"image has no pixels ({width}x{height})")
+    p = cfg.patch_size
+    budget = draw_budget(cfg, rng)
+    crop = (0, 0, width, height)
+    region_h, region_w = float(height), float(width)
+    limit = cfg.max_aspect
+    aspect = height / width
+    over = limit is not None and cfg.mode != "fixed" and max(aspect, 1 / aspect) > limit
+    if over and cfg.aspect_rule == "crop":
+        # Centre-crop the long side down to the limit (floored, so the result never exceeds it).
+        if aspect > 1:
+            keep = max(1, min(height, math.floor(width * limit)))
+            top = (height - keep) // 2
+            crop = (0, top, width, top + keep)
+        else:
+            keep = max(1, min(width, math.floor(height * limit)))
+            left = (width - keep) // 2
+            crop = (left, 0, left + keep, height)
+        region_h, region_w = crop[3] - crop[1], crop[2] - crop[0]
+    if over and cfg.aspect_rule == "pad":
+        # Plan the grid for the limit aspect, then fit the whole image inside it.
+        padded_h, padded_w = (region_w * limit, region_w) if aspect > 1 else (region_h, region_h * limit)
+        gh, gw = plan_grid(padded_h, padded_w, cfg, budget)
+        fit = min(gh * p / region_h, gw * p / region_w)
+        content_h = max(1, min(gh * p, round(region_h * fit)))
+        content_w = max(1, min(gw * p, round(region_w * fit)))
+        return SizePlan(
+            gh, gw, p, crop, content_h, content_w,
+            pad_top=(gh * p - content_h) // 2, pad_left=(gw * p - content_w) // 2, budget=budget,
+            source=(height, width),
+        )
+    gh, gw = plan_grid(region_h, region_w, cfg, budget)
+    return SizePlan(gh, gw, p, crop, gh * p, gw * p, budget=budget, source=(height, width))
+
+
+def resize_to_plan(
+    image: Image.Image,
+    plan: SizePlan,
+    *,
+    resample: str = "bicubic",
+    background: tuple[int, int, int] = (255, 255, 255),
+) -> Image.Image:
+    """Crop, resize (antialiased, one Pillow filter) and pad an RGB image to the plan's pixel size."""
+    src_h, src_w = plan.source if plan.source != (0, 0) else (image.height, image.width)
+    if image.size != (src_w, src_h):
+        # A reduced decode (e.g. JPEG draft) gives fewer pixels of the same picture: scale the crop.
+        if abs(image.width / src_w - image.height / src_h) > 0.05 * max(image.width / src_w, image.height / src_h):
+            raise ValueError(
+                f"image is {image.width}x{image.height} but the plan was made for {src_w}x{src_h}; "
+                "plan from the same (oriented) image you resize"
+            )
+    sx, sy = image.width / src_w, image.height / src_h
+    left, top, right, bottom = plan.crop
+    box = (left * sx, top * sy, right * sx, bottom * sy)
+    filt = RESAMPLE[resample]
+    full = box == (0, 0, image.width, image.height)
+    if full and (plan.content_w, plan.content_h) == image.size:
+        content = image
+    else:
+        content = image.resize((plan.content_w, plan.content_h), filt, box=None if full else box)
+    if (plan.content_w, plan.content_h) == (plan.width, plan.height):
+        return content
+    canvas = Image.new("RGB", (plan.width, plan.height), background)
+    canvas.paste(content, (plan.pad_left, plan.pad_top))
+    return canvas

@@ -1,0 +1,220 @@
+"""Sources: shard lists, the rank/worker split, seeded shuffles, and raw records read from tar shards.
+
+Tar parsing is webdataset's; this module decides who reads what, in which order, and keeps each
+record's key and shard URL with it.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import warnings
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+
+import braceexpand
+
+from .seeding import stream_rng
+
+SHELL_PREFIXES = ("pipe:",)
+
+
+class SourceError(ValueError):
+    """A shard spec or shard that cannot be read; the message names it and what to change."""
+
+
+@dataclass(slots=True)
+class Record:
+    """One raw sample: its key, its shard URL, its index in the shard and its members' bytes."""
+
+    key: str
+    url: str
+    index: int
+    members: dict[str, bytes]
+
+
+@dataclass(slots=True, frozen=True)
+class ShardTask:
+    """Read `url`, keeping the samples whose index i satisfies i % parts == part."""
+
+    url: str
+    part: int = 0
+    parts: int = 1
+
+
+def expand_shards(spec: str | Sequence[str] | None, *, allow_shell: bool = False) -> list[str]:
+    """Shard spec (path, glob, brace range `part-{000..015}.tar`, URL, or a list of them) -> URLs.
+
+    Shell-command URLs (`pipe:`) run a program: they are refused unless allow_shell is True.
+    """
+    if spec is None:
+        raise SourceError("no shards given: set source.shards in the recipe or pass shards=")
+    items = [spec] if isinstance(spec, str) else list(spec)
+    if not items:
+        raise SourceError("the shard list is empty")
+    out: list[str] = []
+    for item in items:
+        if not isinstance(item, str) or not item.strip():
+            raise SourceError(f"a shard spec must be a non-empty string (got {item!r})")
+        item = item.strip()
+        if item.startswith(SHELL_PREFIXES):
+            if not allow_shell:
+                raise SourceError(
+                    f"shard spec {item!r} runs a shell command; this is refused by default because a "
+                    "recipe is data. Set source.allow_shell: true (or allow_shell=True) only for "
+                    "recipes you wrote yourself"
+                )
+            out.extend(braceexpand.braceexpand(item))
+            continue
+        for expanded in braceexpand.braceexpand(item):
+            if "://" in expanded:
+                out.append(expanded)
+            elif any(ch in expanded for ch in "*?["):
+                matches = sorted(glob.glob(os.path.expanduser(expanded)))
+                if not matches:
+                    raise SourceError(f"shard glob {expanded!r} matches no file")
+                out.extend(matches)
+            else:
+                path = os.path.expanduser(expanded.removeprefix("file:"))
+                if not os.path.isfile(path):
+                    raise SourceError(f"shard {path!r} does not exist (from spec {item!r})")
+                out.append(path)
+    return out
+
+
+def shard_order(shards: Sequence[str], *, seed: int, epoch: int, shuffle: bool) -> list[str]:
+    """The epoch's shard order, identical on every rank and worker (seeded by seed and epoch only)."""
+    shards = list(shards)
+    if not shuffle:
+        return shards
+    perm = stream_rng(seed, epoch, "shard-order").permutation(len(shards))
+    return [shards[i] for i in perm]
+
+
+def split_shards(shards: Sequence[str], *, slot: int, slots: int) -> list[ShardTask]:
+    """This reader's share of the shards, so that every sample is read once across all slots.
+
+    With at least as many shards as slots, slot s takes shards s, s+slots, ... With fewer shards,
+    several slots share a shard and each keeps every k-th sample of it, so no reader idles and no
+    sample is duplicated (each sharing reader still scans the whole shard's bytes).
+    """
+    if not 0 <= slot < slots:
+        raise ValueError(f"reader slot {slot} out of range for {slots} slots")
+    n = len(shards)
+    if n == 0:
+        return []
+    if n >= slots:
+        return [ShardTask(url) for url in shards[slot::slots]]
+    shard = slot % n
+    parts = len(range(shard, slots, n))
+    return [ShardTask(shards[shard], part=slot // n, parts=parts)]
+
+
+def open_shard(url: str, *, allow_shell: bool = False):
+    """A binary stream for a shard: local files directly, other URLs through webdataset's gopen."""
+    if url.startswith(SHELL_PREFIXES) and not allow_shell:
+        raise SourceError(f"refusing shell-command shard {url!r}; set source.allow_shell: true to allow it")
+    if url.startswith(SHELL_PREFIXES):
+        import subprocess
+
+        # The caller allowed shell commands explicitly (source.allow_shell).
+        proc = subprocess.Popen(url.removeprefix("pipe:"), shell=True, stdout=subprocess.PIPE)  # noqa: S602
+        return proc.stdout
+    if "://" not in url:
+        return open(url.removeprefix("file:"), "rb")
+    from webdataset import gopen
+
+    return gopen.gopen(url, "rb")
+
+
+def read_shard(task: ShardTask, *, allow_shell: bool = False) -> Iterator[Record]:
+    """Records of one shard task, in tar order, with their index within the shard."""
+    # Imported here: importing webdataset also imports torch when it is installed (seconds).
+    from webdataset.tariterators import group_by_keys, tar_file_iterator
+
+    stream = open_shard(task.url, allow_shell=allow_shell)
+    try:
+        files = tar_file_iterator(stream)
+        files = ({**f, "__url__": task.url} for f in files)
+        for index, sample in enumerate(group_by_keys(files)):
+            if index % task.parts != task.part:
+                continue
+            members = {k: v for k, v in sample.items() if not k.startswith("__")}
+            yield Record(key=sample["__key__"], url=task.url, index=index, members=members)
+    finally:
+        stream.close()
+
+
+def read_tasks(
+    tasks: Sequence[ShardTask],
+    *,
+    allow_shell: bool = False,
+    on_shard_error: Callable[[str, Exception], None] | None = None,
+) -> Iterator[Record]:
+    """Records of several shard tasks in order. A shard that fails mid-read raises, or is reported
+    to on_shard_error (the rest of that shard is lost and the callback records it)."""
+    for task in tasks:
+        try:
+            yield from read_shard(task, allow_shell=allow_shell)
+        except SourceError:
+            raise
+        except Exception as exc:  # tar or I/O failure of this shard
+            if on_shard_error is None:
+                raise SourceError(f"shard {task.url}: cannot read: {exc}") from exc
+            on_shard_error(task.url, exc)
+
+
+class ShuffleBuffer:
+    """Seeded shuffle of raw records (bytes, before decode) through a buffer of `size` records.
+
+    `held` is what the buffer holds right now, so the ledger can account for it.
+    """
+
+    def __init__(self, size: int, rng) -> None:
+        self.size = size
+        self.rng = rng
+        self.held: list[Record] = []
+
+    def __call__(self, records: Iterator[Record]) -> Iterator[Record]:
+        if self.size <= 1:
+            yield from records
+            return
+        buf = self.held
+        for rec in records:
+            if len(buf) < self.size:
+                buf.append(rec)
+                continue
+            i = int(self.rng.integers(len(buf)))
+            out, buf[i] = buf[i], rec
+            yield out
+        while buf:
+            i = int(self.rng.integers(len(buf)))
+            buf[i], buf[-1] = buf[-1], buf[i]
+            yield buf.pop()
+
+
+def reader_tasks(
+    shards: Sequence[str],
+    *,
+    seed: int,
+    epoch: int,
+    rank: int = 0,
+    world_size: int = 1,
+    worker: int = 0,
+    num_workers: int = 1,
+    shuffle_shards: bool = True,
+) -> list[ShardTask]:
+    """The shard tasks one reader (rank, worker) gets in one epoch."""
+    if not 0 <= rank < world_size:
+        raise ValueError(f"rank must be in 0..{world_size - 1} (got {rank})")
+    if not 0 <= worker < num_workers:
+        raise ValueError(f"worker must be in 0..{num_workers - 1} (got {worker})")
+    slots = world_size * num_workers
+    if len(shards) < slots and worker == 0 and rank == 0:
+        warnings.warn(
+            f"{len(shards)} shards for {slots} readers (ranks x workers): readers share shards and "
+            "each scans a whole shard to keep its share; more, smaller shards read faster",
+            stacklevel=2,
+        )
+    order = shard_order(shards, seed=seed, epoch=epoch, shuffle=shuffle_shards)
+    return split_shards(order, slot=rank * num_workers + worker, slots=slots)

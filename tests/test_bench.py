@@ -1,0 +1,118 @@
+"""Tests for patchloom.bench on one tiny demo shard: counts, medians, the ratio, the table, the script.
+
+No timing is asserted: the numbers depend on the machine.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from patchloom.bench import (
+    SquareBaseline,
+    baseline_batch_images,
+    baseline_side,
+    ensure_demo_shards,
+    format_bench,
+    run_bench,
+    square_patches,
+)
+from patchloom.cli import DEMO_RECIPE
+from patchloom.demodata import DEMO_CORRUPT_KEYS, MIN_SAMPLES, make_demo_shards
+from patchloom.recipe import Recipe
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture(scope="module")
+def shard(tmp_path_factory: pytest.TempPathFactory) -> str:
+    out = tmp_path_factory.mktemp("demo")
+    (path,) = make_demo_shards(out, shards=1, per_shard=MIN_SAMPLES, progress=False)
+    return str(path)
+
+
+def _recipe(**sizing: object) -> Recipe:
+    return Recipe.from_dict(DEMO_RECIPE).replace(sizing=dict(sizing)) if sizing else Recipe.from_dict(DEMO_RECIPE)
+
+
+def test_run_bench_numbers(shard: str) -> None:
+    max_tokens = 200  # not a square: the baseline square is isqrt(200) = 14 patches a side
+    recipe = _recipe(max_tokens=max_tokens)
+    result = run_bench(recipe, shards=shard, repeats=1)
+    base, pipe = result["baseline"]["median"], result["pipeline"]["median"]
+    for m in (base, pipe):
+        assert m["images"] > 0 and m["images_per_s"] > 0 and m["useful_tokens_per_s"] > 0
+        assert m["seconds"] > 0 and 0 <= m["padding_pct"] < 100
+        assert m["images"] + m["skipped"] == MIN_SAMPLES  # every record read is delivered or skipped
+    assert pipe["skipped"] >= len(DEMO_CORRUPT_KEYS)
+    assert base["tokens_per_image"] == math.isqrt(max_tokens) ** 2
+    assert 0 < pipe["tokens_per_image"] <= max_tokens
+    assert result["ratio"]["images_per_s"] == pipe["images_per_s"] / base["images_per_s"]
+    assert result["ratio"]["useful_tokens_per_s"] == pipe["useful_tokens_per_s"] / base["useful_tokens_per_s"]
+    assert len(result["baseline"]["runs"]) == len(result["pipeline"]["runs"]) == 1
+    json.dumps(result)  # JSON-able
+
+    text = format_bench(result)
+    assert f"pipeline / baseline: {result['ratio']['images_per_s']:.2f}x images/s" in text
+    assert f"{result['ratio']['useful_tokens_per_s']:.2f}x useful tokens/s" in text
+
+
+def test_medians_over_interleaved_repeats(shard: str) -> None:
+    result = run_bench(_recipe(), shards=shard, repeats=2, max_images=3)
+    for side in ("baseline", "pipeline"):
+        runs = result[side]["runs"]
+        assert len(runs) == 2
+        assert result[side]["median"]["images_per_s"] == pytest.approx(np.median([r["images_per_s"] for r in runs]))
+        assert all(r["images"] >= 3 for r in runs)
+    assert result["baseline"]["median"]["images"] == 3  # the baseline stops exactly at max_images
+
+
+def test_baseline_shapes(shard: str) -> None:
+    recipe = _recipe(max_tokens=200)  # isqrt 14 -> a 224-pixel square of 196 tokens
+    assert baseline_side(recipe) == 224
+    n = baseline_batch_images(recipe)
+    assert n == recipe.packing.rows * recipe.packing.seq_len // 196
+    base = SquareBaseline(recipe, [shard])
+    batches = list(base)
+    assert all(p.shape == (n, 196, 16 * 16 * 3) and lab.shape == (n,) for p, lab in batches)
+    assert sum(int((lab >= 0).sum()) for _, lab in batches) == base.images  # demo samples are labelled
+    assert base.images + base.skipped == MIN_SAMPLES
+
+
+def test_square_patches_raster_order() -> None:
+    import io
+
+    from PIL import Image
+
+    arr = np.zeros((32, 32, 3), np.uint8)
+    arr[:16, 16:] = 255  # top-right patch white
+    buf = io.BytesIO()
+    Image.fromarray(arr).save(buf, "PNG")
+    patches = square_patches(buf.getvalue(), side=32, patch_size=16, resample="nearest")
+    assert patches.shape == (4, 768)
+    assert patches.max(axis=1).tolist() == [0, 255, 0, 0]
+
+
+def test_ensure_demo_shards_only_for_demo_folder(tmp_path: Path) -> None:
+    other = tmp_path / "elsewhere" / "demo-000000.tar"
+    assert not ensure_demo_shards(str(other), demo_dir=tmp_path / "patchloom-demo", progress=False)
+    assert not ensure_demo_shards(None, demo_dir=tmp_path / "patchloom-demo", progress=False)
+
+
+def test_tools_script(shard: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    spec = importlib.util.spec_from_file_location("bench_script", ROOT / "tools" / "bench.py")
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    out = tmp_path / "bench.json"
+    rc = module.main(["demo", "--shards", shard, "--repeats", "1", "--max-images", "4", "--json", str(out),
+                      "--no-progress"])
+    assert rc == 0
+    assert "pipeline / baseline:" in capsys.readouterr().out
+    assert json.loads(out.read_text())["repeats"] == 1
+    assert module.main(["no-such-recipe.yaml", "--no-progress"]) == 2

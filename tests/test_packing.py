@@ -1,0 +1,112 @@
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from patchloom import PatchSet, Packer, pack
+from patchloom.packing import assign_rows
+from patchloom.patches import grid_coords
+
+
+def ps(n: int, key: str, d: int = 12, label: int | None = 1) -> PatchSet:
+    gh, gw = 1, n
+    patches = np.full((n, d), hash(key) % 251, dtype=np.uint8)
+    return PatchSet(patches, grid_coords(gh, gw), (gh, gw), key, label)
+
+
+@pytest.mark.parametrize("algorithm", ["first_fit", "best_fit", "in_order"])
+def test_assign_rows_respects_capacity_and_image_limit(algorithm):
+    rng = np.random.default_rng(0)
+    sizes = rng.integers(1, 60, size=200).tolist()
+    rows, left = assign_rows(sizes, seq_len=64, rows=6, max_images_per_row=3, algorithm=algorithm)
+    placed = [i for r in rows for i in r]
+    assert sorted(placed + left) == list(range(200))  # every item placed or left, once
+    for r in rows:
+        assert sum(sizes[i] for i in r) <= 64
+        assert len(r) <= 3
+
+
+def test_first_fit_and_best_fit_differ_as_defined():
+    sizes = [6, 5, 3]
+    ff, _ = assign_rows(sizes, seq_len=10, rows=2, algorithm="first_fit")
+    bf, _ = assign_rows(sizes, seq_len=10, rows=2, algorithm="best_fit")
+    # first fit: 6 -> row0, 5 -> row1, 3 -> row0 (first with room). best fit: 3 -> row1 (5 left) vs row0 (4 left) -> row0.
+    assert ff == [[0, 2], [1]]
+    sizes = [4, 7, 2]
+    bf, _ = assign_rows(sizes, seq_len=10, rows=2, algorithm="best_fit")
+    ff, _ = assign_rows(sizes, seq_len=10, rows=2, algorithm="first_fit")
+    assert ff == [[0, 2], [1]]  # 2 goes into row0 (6 left), the first that fits
+    assert bf == [[0], [1, 2]]  # 2 goes into row1 (3 left), the tightest
+
+
+def test_in_order_keeps_arrival_order():
+    sizes = [8, 8, 1, 1]
+    rows, left = assign_rows(sizes, seq_len=10, rows=1, algorithm="in_order")
+    assert rows == [[0]] and left == [1, 2, 3]  # no jumping ahead, unlike first fit
+    rows, left = assign_rows(sizes, seq_len=10, rows=1, algorithm="first_fit")
+    assert rows == [[0, 2, 3]] and left == [1]
+
+
+def test_unbounded_rows_open_as_needed():
+    rows, left = assign_rows([10, 10, 10], seq_len=10, rows=None)
+    assert rows == [[0], [1], [2]] and left == []
+
+
+def test_item_larger_than_row_is_an_error():
+    with pytest.raises(ValueError, match="seq_len"):
+        assign_rows([11], seq_len=10, rows=1)
+
+
+def test_pack_writes_segments_coords_and_labels():
+    items = [ps(3, "a", label=4), ps(2, "b", label=None), ps(4, "c", label=7)]
+    batch = pack(items, seq_len=6)
+    assert batch.patches.shape == (2, 6, 12)
+    assert batch.keys == [["a", "b"], ["c"]]
+    np.testing.assert_array_equal(batch.segment_ids, [[1, 1, 1, 2, 2, 0], [1, 1, 1, 1, 0, 0]])
+    np.testing.assert_array_equal(batch.coords[0, :, 1], [0, 1, 2, 0, 1, 0])
+    np.testing.assert_array_equal(batch.labels, [[4, -1], [7, -1]])
+    np.testing.assert_array_equal(batch.grids[1], [[1, 4], [0, 0]])
+    np.testing.assert_array_equal(batch.patches[0, 3], items[1].patches[0])
+    assert not batch.patches[0, 5].any()  # padding is zeros
+
+
+def test_pack_with_fixed_rows_refuses_to_drop():
+    with pytest.raises(ValueError, match="do not fit"):
+        pack([ps(5, "a"), ps(5, "b"), ps(5, "c")], seq_len=6, rows=2)
+
+
+def test_packer_never_drops_and_keeps_shape():
+    rng = np.random.default_rng(3)
+    items = [ps(int(n), f"k{i}") for i, n in enumerate(rng.integers(1, 30, size=101))]
+    packer = Packer(seq_len=32, rows=3, max_images_per_row=4, buffer=10)
+    batches = []
+    for n_pushed, it in enumerate(items, 1):
+        batches += packer.push(it)
+        # Held items are exactly those not yet emitted.
+        emitted = sum(b.num_images for b in batches)
+        assert emitted + len(packer.pending) == n_pushed
+    batches += packer.flush()
+    keys = [k for b in batches for row in b.keys for k in row]
+    assert sorted(keys) == sorted(p.key for p in items)
+    assert {b.patches.shape for b in batches} == {(3, 32, 12)}
+    assert {b.grids.shape for b in batches} == {(3, 4, 2)}
+
+
+def test_packer_carries_what_does_not_fit():
+    packer = Packer(seq_len=10, rows=1, buffer=3)
+    out = []
+    for n, k in [(6, "a"), (6, "b"), (3, "c")]:
+        out += packer.push(ps(n, k))
+    assert [b.keys for b in out] == [[["a", "c"]]]
+    assert [p.key for p in packer.pending] == ["b"]
+    assert [b.keys for b in packer.flush()] == [[["b"]]]
+
+
+def test_packer_rejects_oversized_image_with_advice():
+    with pytest.raises(ValueError, match="max_tokens"):
+        Packer(seq_len=4, rows=1).push(ps(5, "big"))
+
+
+def test_mixed_patch_dims_are_an_error():
+    with pytest.raises(ValueError, match="patch dimension"):
+        pack([ps(2, "a", d=12), ps(2, "b", d=48)], seq_len=8)
