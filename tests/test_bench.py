@@ -5,7 +5,6 @@ No timing is asserted: the numbers depend on the machine.
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import math
 from pathlib import Path
@@ -104,15 +103,24 @@ def test_ensure_demo_shards_only_for_demo_folder(tmp_path: Path) -> None:
     assert not ensure_demo_shards(None, demo_dir=tmp_path / "patchloom-demo", progress=False)
 
 
-def test_tools_script(shard: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    spec = importlib.util.spec_from_file_location("bench_script", ROOT / "tools" / "bench.py")
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
+def test_bench_command(shard: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from patchloom.cli import main
+
     out = tmp_path / "bench.json"
-    rc = module.main(["demo", "--shards", shard, "--repeats", "1", "--max-images", "4", "--json", str(out),
-                      "--no-progress"])
+    rc = main(["bench", "demo", "--shards", shard, "--repeats", "1", "--max-images", "4", "--json", str(out),
+               "--no-progress"])
     assert rc == 0
     assert "pipeline / baseline:" in capsys.readouterr().out
     assert json.loads(out.read_text())["repeats"] == 1
-    assert module.main(["no-such-recipe.yaml", "--no-progress"]) == 2
+    assert main(["bench", "no-such-recipe.yaml", "--no-progress"]) == 2
+
+
+def test_tools_script_is_the_command(shard: str) -> None:
+    import subprocess
+    import sys
+
+    out = subprocess.run([sys.executable, str(ROOT / "tools" / "bench.py"), "demo", "--shards", shard,
+                          "--repeats", "1", "--max-images", "2", "--no-progress"],
+                         capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert "pipeline / baseline:" in out.stdout

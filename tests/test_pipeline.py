@@ -209,3 +209,19 @@ def test_orientation_applied_before_sizing(tmp_path):
     batch = next(iter(Pipeline(recipe(sizing={"mode": "native", "max_tokens": 64}), str(shard))))
     gh, gw = batch.grids[0, 0]
     assert (gh, gw) == (6, 2)  # 48x16 display -> 6 x 2 patches of 8
+
+
+def test_core_runs_without_torch(shards):
+    """torch is an optional extra: block its import and stream a pipeline in a fresh interpreter."""
+    import subprocess
+    import sys
+
+    code = (
+        "import sys; sys.modules['torch'] = None\n"
+        "from patchloom import Pipeline, Recipe\n"
+        f"p = Pipeline(Recipe.from_dict({BASE!r}), {shards!r})\n"
+        "print(sum(b.num_images for b in p))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "48"

@@ -324,28 +324,31 @@ def test_max_aspect_crop_is_centred_and_exact(h, w):
         assert (plan.grid_h, plan.grid_w) == (32, 8)
 
 
-@pytest.mark.xfail(
-    strict=True,
-    reason="sizing.plan_size crop rounds the kept length (round) instead of flooring it, so the "
-    "cropped region can exceed max_aspect (6x4000 strip, limit 3.3 -> 20x6 = 3.33:1)",
-)
-def test_max_aspect_crop_never_exceeds_the_limit():
-    cfg = sizing(mode="budget", patch_size=16, max_tokens=256, max_aspect=3.3, aspect_rule="crop")
-    plan = plan_size(6, 4000, cfg)
+@pytest.mark.parametrize("limit", [1.1, 1.5, 2.5, 3.3, 3.7])
+@pytest.mark.parametrize(("h", "w"), [(6, 4000), (4000, 6), (7, 19), (3, 2)])
+def test_max_aspect_crop_never_exceeds_a_fractional_limit(h, w, limit):
+    """Rounding the kept length up would overshoot (6 px tall, limit 3.3: 20 px is 3.33:1)."""
+    cfg = sizing(mode="budget", patch_size=16, max_tokens=256, max_aspect=limit, aspect_rule="crop")
+    plan = plan_size(h, w, cfg)
     left, top, right, bottom = plan.crop
-    assert (right - left) / (bottom - top) <= 3.3
+    ch, cw = bottom - top, right - left
+    if max(h / w, w / h) > limit:
+        assert max(ch / cw, cw / ch) <= limit
+        assert max(ch, cw) + 1 > min(ch, cw) * limit  # and keeps as much as the limit allows
+    else:
+        assert plan.crop == (0, 0, w, h)
 
 
 @PROPERTY
 @given(
     h=st.integers(1, 4000),
     w=st.integers(1, 4000),
-    limit=st.sampled_from([1.0, 2.0, 3.0, 4.0, 8.0]),
+    limit=st.one_of(st.sampled_from([1.0, 2.0, 3.0, 4.0, 8.0]), st.floats(1.0, 10.0)),
     rule=st.sampled_from(["crop", "pad"]),
     t=st.integers(1, 1024),
 )
 def test_max_aspect_property(h, w, limit, rule, t):
-    """Whole-number limits: crop keeps the region within the limit, pad keeps every pixel."""
+    """Crop keeps the region within the limit, pad keeps every pixel."""
     cfg = sizing(mode="budget", patch_size=8, max_tokens=t, max_aspect=limit, aspect_rule=rule)
     plan = plan_size(h, w, cfg)
     plan_is_valid(plan, h, w)

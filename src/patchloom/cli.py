@@ -1,4 +1,4 @@
-"""The `patchloom` command: demo, run, and recipe check/show.
+"""The `patchloom` command: demo, run, bench, and recipe check/show.
 
 Exit status is 0 only on success; recipe and input errors print one clear message (no traceback).
 """
@@ -72,6 +72,27 @@ def cmd_run(args: argparse.Namespace) -> int:
     return 0
 
 
+def cmd_bench(args: argparse.Namespace) -> int:
+    from .bench import ensure_demo_shards, format_bench, run_bench
+    from .demodata import demo_shard_pattern
+
+    progress = not args.no_progress
+    if args.recipe == "demo":
+        recipe = Recipe.from_dict(DEMO_RECIPE, origin="built-in demo recipe")
+        shards = args.shards or demo_shard_pattern(args.data, shards=4)
+    else:
+        recipe = Recipe.from_file(args.recipe)
+        shards = args.shards
+    spec = shards if shards is not None else recipe.source.shards
+    if ensure_demo_shards(spec, demo_dir=args.data, progress=progress):
+        print(f"made demo shards in {args.data}", file=sys.stderr)
+    result = run_bench(recipe, shards=shards, max_images=args.max_images, repeats=args.repeats, progress=progress)
+    print(format_bench(result))
+    if args.json:
+        Path(args.json).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
+    return 0
+
+
 def cmd_recipe(args: argparse.Namespace) -> int:
     recipe = Recipe.from_file(args.file)
     if args.action == "check":
@@ -104,6 +125,16 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--json", metavar="FILE", help="also write the summary and ledger as JSON")
     run.add_argument("--no-progress", action="store_true", help="no progress bar")
     run.set_defaults(func=cmd_run)
+
+    bench = sub.add_parser("bench", help="time a recipe beside a plain square-resize baseline and print the ratio")
+    bench.add_argument("recipe", help="recipe YAML file, or `demo` for the built-in demo recipe")
+    bench.add_argument("--shards", help="shard spec overriding the recipe's source.shards")
+    bench.add_argument("--repeats", type=int, default=3, help="interleaved runs of each side (default: %(default)s)")
+    bench.add_argument("--max-images", type=int, help="stop each run after about this many images")
+    bench.add_argument("--json", metavar="FILE", help="also write the full result as JSON")
+    bench.add_argument("--data", default="patchloom-demo", help="where demo shards are made if needed")
+    bench.add_argument("--no-progress", action="store_true", help="no progress bars")
+    bench.set_defaults(func=cmd_bench)
 
     rec = sub.add_parser("recipe", help="check a recipe file, or show it resolved with defaults")
     rec.add_argument("action", choices=["check", "show"])
