@@ -69,3 +69,9 @@ def test_shipped_recipes_load_and_round_trip(path):
 def test_there_are_shipped_recipes():
     names = {p.name for p in RECIPES}
     assert {"pretrain.yaml", "eval.yaml"} <= names
+
+
+def test_fixed_mode_square_must_reach_min_tokens():
+    with pytest.raises(RecipeError, match="isqrt"):
+        Recipe.from_dict({"sizing": {"mode": "fixed", "max_tokens": 10, "min_tokens": 10}})
+    assert Recipe.from_dict({"sizing": {"mode": "fixed", "max_tokens": 10, "min_tokens": 9}}).sizing.min_tokens == 9

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 from pathlib import Path
 from typing import Any, Literal
 
@@ -98,6 +99,11 @@ class SizingConfig(_Section):
     def _consistent(self) -> SizingConfig:
         if self.min_tokens > self.max_tokens:
             raise ValueError(f"min_tokens must be <= max_tokens (got {self.min_tokens} > {self.max_tokens})")
+        if self.mode == "fixed" and math.isqrt(self.max_tokens) ** 2 < self.min_tokens:
+            raise ValueError(
+                f"mode 'fixed' uses a square grid of isqrt(max_tokens)^2 = {math.isqrt(self.max_tokens) ** 2} "
+                f"tokens, below min_tokens={self.min_tokens}; lower min_tokens or raise max_tokens"
+            )
         if self.mode == "sampled" and self.sampled is None:
             raise ValueError("mode 'sampled' needs a `sampled:` section, e.g. {range: [64, 256]}")
         if self.sampled is not None and self.sampled.largest > self.max_tokens:

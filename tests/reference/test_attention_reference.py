@@ -14,10 +14,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-import torch
-import torch.nn.functional as F
 
 from patchloom import PatchSet, pack
+
+torch = pytest.importorskip("torch")  # optional dependency: the attention checks need it
+F = torch.nn.functional
 
 HEADS, HEAD_DIM, D = 2, 8, 12
 
@@ -110,6 +111,21 @@ def test_float32_attention_matches_to_1e6():
             qi, ki, vi = _qkv(torch.from_numpy(ps.patches).float()[None], w)
             alone = F.scaled_dot_product_attention(qi, ki, vi)[0]
             torch.testing.assert_close(out[r][:, idx], alone, rtol=0, atol=1e-6)
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_mask_is_block_diagonal_by_segment(case):
+    """Source: block-diagonal masking by segment id (common practice), built here by loops."""
+    sizes, seq_len, rows = CASES[case]
+    batch = pack(_patchsets(sizes), seq_len, rows)
+    seg = batch.segment_ids.tolist()
+    want = np.array([[[a == b and a > 0 for b in row] for a in row] for row in seg])
+    np.testing.assert_array_equal(batch.attention_mask(), want)
+    for i in range(seq_len):
+        for r, row in enumerate(seg):
+            if row[i] == 0:
+                want[r, i, i] = True  # padding may attend to itself only
+    np.testing.assert_array_equal(batch.attention_mask(padding_attends_self=True), want)
 
 
 def test_mask_blocks_attention_across_images():

@@ -125,3 +125,29 @@ def test_pipeline_over_a_shard_of_sample_photos(tmp_path, photos):
     ledger = pipe.ledger
     assert ledger.read == len(PHOTOS) and ledger.emitted == len(PHOTOS)
     assert not ledger.skipped and not ledger.shard_errors
+
+
+def test_sampled_budgets_agree_between_pipeline_and_image_to_patches(tmp_path, photos):
+    """Source: skimage.data photos. In `sampled` mode each photo's budget is drawn from its own
+    (seed, epoch, key) generator, so the shard pipeline and image_to_patches agree per epoch."""
+    shards = _write_shards(tmp_path, photos)
+    recipe = Recipe.from_dict({
+        "seed": 5,
+        "source": {"shards": shards, "shuffle_buffer": 3},
+        "sizing": {"mode": "sampled", "patch_size": P, "max_tokens": BUDGET, "sampled": {"range": [64, BUDGET]}},
+        "packing": {"seq_len": 512, "rows": 2, "buffer": 4, "max_images_per_row": 4},
+    })
+    grids_by_epoch = []
+    for epoch in (0, 1):
+        grids = {}
+        for batch in Pipeline(recipe, epoch=epoch):
+            for r, row_keys in enumerate(batch.keys):
+                for j, key in enumerate(row_keys):
+                    ref = image_to_patches(photos[key], recipe, key=key, epoch=epoch)
+                    assert tuple(int(v) for v in batch.grids[r, j]) == ref.grid
+                    idx = np.flatnonzero(batch.segment_ids[r] == j + 1)
+                    np.testing.assert_array_equal(batch.patches[r, idx], ref.patches)
+                    grids[key] = ref.grid
+        assert sorted(grids) == sorted(PHOTOS)
+        grids_by_epoch.append(grids)
+    assert grids_by_epoch[0] != grids_by_epoch[1]  # a new epoch draws new budgets
