@@ -22,7 +22,7 @@ def test_recipe_check_and_show(capsys):
     assert "ok (fingerprint" in capsys.readouterr().out
     assert main(["recipe", "show", str(ROOT / "recipes/eval.yaml")]) == 0
     shown = capsys.readouterr().out
-    assert "max_pixels:" in shown and "aspect_rule: pad" in shown
+    assert "pixel_limit:" in shown and "aspect_rule: pad" in shown
 
 
 def test_bad_recipe_exits_nonzero_with_message(tmp_path, capsys):

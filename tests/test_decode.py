@@ -171,7 +171,7 @@ def _pillow_globals_untouched():
 def test_formats_round_trip(fmt, params, tolerance):
     arr = _block_image()
     data = _encode(Image.fromarray(arr), fmt, **params)
-    opened = open_image(data, max_pixels=10_000)
+    opened = open_image(data, pixel_limit=10_000)
     assert opened.format == fmt
     assert (opened.width, opened.height, opened.orientation) == (16, 24, 1)
     out = decode_rgb(data)
@@ -188,7 +188,7 @@ def test_formats_round_trip(fmt, params, tolerance):
 
 def test_decode_returns_rgb_pil_image_and_header_is_lazy():
     data = _encode(Image.fromarray(_block_image()), "PNG")
-    opened = open_image(data, max_pixels=10_000)
+    opened = open_image(data, pixel_limit=10_000)
     assert isinstance(opened, OpenedImage)
     assert opened.mode == "RGB"
     assert opened.image._im is None  # header only: no pixel buffer yet
@@ -401,7 +401,7 @@ def test_16bit_grey_png_and_tiff_scaled():
     values = np.array([[0, 257, 32768, 65535]], np.uint16)
     for fmt in ("PNG", "TIFF"):
         data = _encode(Image.fromarray(values), fmt)
-        assert open_image(data, max_pixels=100).mode.startswith("I;16"), fmt
+        assert open_image(data, pixel_limit=100).mode.startswith("I;16"), fmt
         assert decode_rgb(data)[0, :, 0].tolist() == [0, 1, 128, 255], fmt
 
 
@@ -456,14 +456,14 @@ def test_pixel_limit_rejects_from_header_before_decoding(monkeypatch):
     monkeypatch.setattr(ImageFile.ImageFile, "load", lambda self: loads.append(1) or original(self))
     # a real image one pixel over the limit
     data = _encode(Image.new("RGB", (10, 10)), "PNG")
-    over = r"10x10 = 100 pixels, over decode.max_pixels=99; raise decode.max_pixels"
+    over = r"10x10 = 100 pixels, over decode.pixel_limit=99; raise decode.pixel_limit"
     with pytest.raises(DecodeError, match=over):
-        open_image(data, max_pixels=99)
-    assert open_image(data, max_pixels=100).width == 10
+        open_image(data, pixel_limit=99)
+    assert open_image(data, pixel_limit=100).width == 10
     # a header claiming 10000x10000 with no real pixel data: the limit, not the decoder, answers
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # Pillow's DecompressionBombWarning must be silenced
-        over = r"10000x10000 = 100000000 pixels, over decode.max_pixels=64000000"
+        over = r"10000x10000 = 100000000 pixels, over decode.pixel_limit=64000000"
         with pytest.raises(DecodeError, match=over):
             decode_rgb(_huge_png_header(10_000, 10_000))
     assert loads == []
@@ -475,24 +475,24 @@ def test_our_limit_governs_between_pillow_warning_and_error():
     assert default is not None and default < 100_000_000 < 2 * default
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        opened = open_image(_huge_png_header(10_000, 10_000), max_pixels=150_000_000)
+        opened = open_image(_huge_png_header(10_000, 10_000), pixel_limit=150_000_000)
     assert (opened.width, opened.height) == (10_000, 10_000)
     assert Image.MAX_IMAGE_PIXELS == default
 
 
 def test_pillow_hard_limit_becomes_decode_error():
     data = _huge_png_header(20_000, 20_000)  # 400 M pixels: over 2 x Pillow's default limit
-    over = r"400000000 pixels.*MAX_IMAGE_PIXELS.*decode.max_pixels=500000000"
+    over = r"400000000 pixels.*MAX_IMAGE_PIXELS.*decode.pixel_limit=500000000"
     with pytest.raises(DecodeError, match=over) as info:
-        open_image(data, max_pixels=500_000_000)
+        open_image(data, pixel_limit=500_000_000)
     assert isinstance(info.value.__cause__, Image.DecompressionBombError)
-    with pytest.raises(DecodeError, match="decode.max_pixels=64000000"):
-        open_image(data, max_pixels=64_000_000)
+    with pytest.raises(DecodeError, match="decode.pixel_limit=64000000"):
+        open_image(data, pixel_limit=64_000_000)
 
 
-def test_max_pixels_must_be_positive():
-    with pytest.raises(ValueError, match="max_pixels"):
-        open_image(b"", max_pixels=0)
+def test_pixel_limit_must_be_positive():
+    with pytest.raises(ValueError, match="pixel_limit"):
+        open_image(b"", pixel_limit=0)
 
 
 # ----------------------------------------------------------------------------- errors
@@ -534,7 +534,7 @@ def test_corrupt_png_data():
 def test_format_outside_the_accepted_list():
     data = _encode(Image.new("RGB", (4, 4)), "PPM")
     with pytest.raises(DecodeError, match="JPEG, PNG, WEBP, GIF, BMP, TIFF"):
-        open_image(data, max_pixels=100)
+        open_image(data, pixel_limit=100)
 
 
 # ----------------------------------------------------------------------------- orientation
@@ -544,7 +544,7 @@ def test_format_outside_the_accepted_list():
 @pytest.mark.parametrize("orientation", range(1, 9))
 def test_header_size_equals_decoded_size(orientation, fmt):
     data = _with_orientation(Image.fromarray(_block_image()), fmt, orientation)
-    opened = open_image(data, max_pixels=10_000)
+    opened = open_image(data, pixel_limit=10_000)
     assert opened.orientation == orientation
     expect = (24, 16) if orientation >= 5 else (16, 24)
     assert (opened.width, opened.height) == expect
@@ -558,7 +558,7 @@ def test_orientation_in_other_formats(fmt, params):
     """TIFF matters most: Pillow's TIFF reader applies the orientation itself; not twice."""
     img = Image.fromarray(_block_image())
     data = _with_orientation(img, fmt, 6, **params)
-    opened = open_image(data, max_pixels=10_000)
+    opened = open_image(data, pixel_limit=10_000)
     assert (opened.orientation, opened.width, opened.height) == (6, 24, 16)
     out = np.asarray(opened.decode())
     assert np.array_equal(out, np.rot90(_block_image(), k=-1))  # 90 degrees clockwise
@@ -566,7 +566,7 @@ def test_orientation_in_other_formats(fmt, params):
 
 def test_bad_orientation_value_is_ignored():
     data = _with_orientation(Image.new("RGB", (4, 2)), "JPEG", 9)
-    opened = open_image(data, max_pixels=100)
+    opened = open_image(data, pixel_limit=100)
     assert (opened.orientation, opened.width, opened.height) == (1, 4, 2)
 
 
@@ -640,33 +640,33 @@ def test_unreadable_profile_is_ignored():
 
 def test_reduce_to_uses_jpeg_draft_but_never_goes_below():
     data = _encode(Image.fromarray(np.kron(_block_image(), np.ones((4, 4, 1), np.uint8))), "JPEG")  # 64x96
-    full = open_image(data, max_pixels=10_000).decode()
+    full = open_image(data, pixel_limit=10_000).decode()
     assert full.size == (64, 96)
-    small = open_image(data, max_pixels=10_000).decode(reduce_to=(16, 24))
+    small = open_image(data, pixel_limit=10_000).decode(reduce_to=(16, 24))
     assert small.size == (16, 24)
-    odd = open_image(data, max_pixels=10_000).decode(reduce_to=(20, 25))
+    odd = open_image(data, pixel_limit=10_000).decode(reduce_to=(20, 25))
     assert odd.size[0] >= 20 and odd.size[1] >= 25 and odd.size[0] < 64
-    big = open_image(data, max_pixels=10_000).decode(reduce_to=(100, 200))
+    big = open_image(data, pixel_limit=10_000).decode(reduce_to=(100, 200))
     assert big.size == (64, 96)
 
 
 def test_reduce_to_keeps_the_aspect_of_small_images():
     data = _encode(Image.new("RGB", (17, 9), (50, 60, 70)), "JPEG")  # / 8 would round to 3x2
-    out = open_image(data, max_pixels=1_000).decode(reduce_to=(2, 1))
+    out = open_image(data, pixel_limit=1_000).decode(reduce_to=(2, 1))
     assert out.size == (17, 9)
 
 
 def test_reduce_to_is_in_display_orientation():
     img = Image.fromarray(np.kron(_block_image(), np.ones((4, 4, 1), np.uint8)))  # stored 64x96
     data = _with_orientation(img, "JPEG", 6)
-    opened = open_image(data, max_pixels=10_000)
+    opened = open_image(data, pixel_limit=10_000)
     assert (opened.width, opened.height) == (96, 64)
     out = opened.decode(reduce_to=(48, 32))
     assert out.size == (48, 32)
-    out = open_image(data, max_pixels=10_000).decode(reduce_to=(90, 20))  # 90 > 96 / 2: no draft
+    out = open_image(data, pixel_limit=10_000).decode(reduce_to=(90, 20))  # 90 > 96 / 2: no draft
     assert out.size == (96, 64)
 
 
 def test_reduce_to_ignored_for_png():
     data = _encode(Image.fromarray(_block_image()), "PNG")
-    assert open_image(data, max_pixels=10_000).decode(reduce_to=(2, 3)).size == (16, 24)
+    assert open_image(data, pixel_limit=10_000).decode(reduce_to=(2, 3)).size == (16, 24)

@@ -97,10 +97,10 @@ def test_pixel_limit_skips_before_decode(tmp_path):
     rng = np.random.default_rng(1)
     shard = write_shard(tmp_path / "big.tar", [("big", {"png": encode_png(random_image(rng, 100, 100))}),
                                                ("small", {"png": encode_png(random_image(rng, 10, 10))})])
-    pipe = Pipeline(recipe(decode={"max_pixels": 5000}), str(shard))
+    pipe = Pipeline(recipe(decode={"pixel_limit": 5000}), str(shard))
     keys = [k for b in pipe for row in b.keys for k in row]
     assert keys == ["small"]
-    assert "max_pixels" in pipe.ledger.skipped[0].reason
+    assert "pixel_limit" in pipe.ledger.skipped[0].reason
 
 
 def test_sample_tokens_do_not_depend_on_order_split_or_shuffle(tmp_path):

@@ -1,6 +1,6 @@
 """Bytes -> RGB uint8 pixels, header first.
 
-`open_image` reads only the header, so the size guard (`decode.max_pixels`) runs before any pixel
+`open_image` reads only the header, so the size guard (`decode.pixel_limit`) runs before any pixel
 is decoded and the sizing stage can plan from the display size. `OpenedImage.decode` then decodes,
 applies the EXIF orientation, converts any Pillow mode to RGB (16-bit data scaled, alpha composited
 on a background, embedded ICC profiles converted to sRGB) and returns a PIL image.
@@ -96,14 +96,14 @@ class OpenedImage:
         return rgb if method is None else rgb.transpose(method)
 
 
-def open_image(data: bytes, *, max_pixels: int) -> OpenedImage:
-    """Read only the header; raise DecodeError if not an image or if it has over `max_pixels`.
+def open_image(data: bytes, *, pixel_limit: int) -> OpenedImage:
+    """Read only the header; raise DecodeError if not an image or if it has over `pixel_limit`.
 
     The pixel check runs on the header size, before any pixel is decoded (decompression-bomb
     guard). Pillow's own warning for large images is silenced here because our limit governs.
     """
-    if max_pixels < 1:
-        raise ValueError(f"max_pixels must be >= 1 (got {max_pixels})")
+    if pixel_limit < 1:
+        raise ValueError(f"pixel_limit must be >= 1 (got {pixel_limit})")
     if not isinstance(data, (bytes, bytearray, memoryview)):
         raise TypeError(f"open_image() takes the encoded bytes (got {type(data).__name__})")
     data = bytes(data)
@@ -117,7 +117,7 @@ def open_image(data: bytes, *, max_pixels: int) -> OpenedImage:
             raise DecodeError(
                 f"{size}, over Pillow's own hard limit of 2 x Image.MAX_IMAGE_PIXELS = "
                 f"{2 * (Image.MAX_IMAGE_PIXELS or 0)} pixels, which Pillow enforces when opening, "
-                f"before decode.max_pixels={max_pixels} is checked; drop or downscale such images "
+                f"before decode.pixel_limit={pixel_limit} is checked; drop or downscale such images "
                 f"upstream (only the application, not the recipe, can raise PIL.Image.MAX_IMAGE_PIXELS)"
             ) from exc
         except MemoryError:
@@ -131,11 +131,11 @@ def open_image(data: bytes, *, max_pixels: int) -> OpenedImage:
             ) from exc
     stored_w, stored_h = _stored_size(img)
     pixels = stored_w * stored_h
-    if pixels > max_pixels:
+    if pixels > pixel_limit:
         img.close()
         raise DecodeError(
-            f"image is {stored_w}x{stored_h} = {pixels} pixels, over decode.max_pixels={max_pixels}; "
-            f"raise decode.max_pixels in the recipe if these images are expected"
+            f"image is {stored_w}x{stored_h} = {pixels} pixels, over decode.pixel_limit={pixel_limit}; "
+            f"raise decode.pixel_limit in the recipe if these images are expected"
         )
     orientation = _orientation(img)
     width, height = (stored_h, stored_w) if orientation >= 5 else (stored_w, stored_h)
@@ -173,11 +173,11 @@ def to_rgb(img: Image.Image, *, background: tuple[int, int, int] = (255, 255, 25
 def decode_rgb(
     data: bytes,
     *,
-    max_pixels: int = 64_000_000,
+    pixel_limit: int = 64_000_000,
     background: tuple[int, int, int] = (255, 255, 255),
 ) -> np.ndarray:
     """Convenience: encoded bytes -> HxWx3 uint8 array (display orientation, sRGB)."""
-    rgb = open_image(data, max_pixels=max_pixels).decode(background=background)
+    rgb = open_image(data, pixel_limit=pixel_limit).decode(background=background)
     return np.array(rgb, dtype=np.uint8)
 
 

@@ -133,7 +133,7 @@ def process_record(rec: Record, recipe: Recipe, epoch: int) -> PatchSet:
         ext, data = _find_image(rec, recipe.source.image_keys)
         label = parse_label(rec, recipe.source.label_key)
         stage = "decode"
-        opened = open_image(data, max_pixels=recipe.decode.max_pixels)
+        opened = open_image(data, pixel_limit=recipe.decode.pixel_limit)
         stage = "sizing"
         plan = plan_size(opened.height, opened.width, recipe.sizing, _sizing_rng(recipe, recipe.seed, epoch, rec.key))
         stage = "decode"

@@ -42,7 +42,7 @@ class SourceConfig(_Section):
 class DecodeConfig(_Section):
     """How bytes become RGB pixels."""
 
-    max_pixels: int = Field(default=64_000_000, ge=1)
+    pixel_limit: int = Field(default=64_000_000, ge=1)
     reduced_jpeg: bool = True  # let the JPEG decoder skip detail the size plan will discard
     background: tuple[int, int, int] = (255, 255, 255)
 

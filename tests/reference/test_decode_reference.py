@@ -58,7 +58,7 @@ def test_exif_orientation_per_standard(orientation, display_size, red_at, green_
     top-left corner (red) and top-right corner (green) must land where those definitions put them.
     """
     data = _marked_jpeg(orientation)
-    opened = open_image(data, max_pixels=10_000)
+    opened = open_image(data, pixel_limit=10_000)
     assert (opened.orientation, opened.width, opened.height) == (orientation, *display_size)
     out = decode_rgb(data)
     assert (out.shape[1], out.shape[0]) == display_size
