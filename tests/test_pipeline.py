@@ -81,6 +81,9 @@ def test_skip_mode_records_shard_key_stage_reason(tmp_path):
     assert "no image member" in skipped["no-image"].reason and skipped["no-image"].stage == "select"
     assert "integer" in skipped["bad-label"].reason
     assert pipe.ledger.read == 5 == pipe.ledger.emitted + len(pipe.ledger.skipped)
+    reasons = pipe.ledger.reasons()
+    assert reasons["select: no image member"] == 1 and sum(reasons.values()) == 3
+    assert pipe.ledger.examples()["select: no image member"] == ["no-image (mixed.tar)"]
 
 
 def test_raise_mode_names_shard_key_stage_and_cause(tmp_path):

@@ -58,8 +58,17 @@ class Ledger:
         return self.read - self.emitted - len(self.skipped)
 
     def reasons(self) -> dict[str, int]:
-        """Skipped samples counted by stage and cause class."""
-        return dict(Counter(f"{s.stage}: {s.reason.split(':')[0]}" for s in self.skipped))
+        """Skipped samples counted by stage and the gist of their cause."""
+        return dict(Counter(f"{s.stage}: {_gist(s.reason)}" for s in self.skipped))
+
+    def examples(self, per_reason: int = 2) -> dict[str, list[str]]:
+        """A few `key (shard)` examples for each reason, so a user can go and look."""
+        out: dict[str, list[str]] = {}
+        for s in self.skipped:
+            names = out.setdefault(f"{s.stage}: {_gist(s.reason)}", [])
+            if len(names) < per_reason:
+                names.append(f"{s.key} ({s.shard.rsplit('/', 1)[-1]})")
+        return out
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -68,8 +77,18 @@ class Ledger:
             "skipped": len(self.skipped),
             "in_buffer": self.in_buffer,
             "skip_reasons": self.reasons(),
+            "skip_examples": self.examples(),
             "shard_errors": [s.shard + ": " + s.reason for s in self.shard_errors],
         }
+
+
+def _gist(reason: str) -> str:
+    """'DecodeError: truncated image data (OSError: ...); ...' -> 'truncated image data'."""
+    head, sep, rest = reason.partition(": ")
+    text = rest if sep and head.isidentifier() else reason
+    for stop in (" (", "; ", ": "):
+        text = text.split(stop, 1)[0]
+    return text.strip()[:80]
 
 
 def _find_image(rec: Record, image_keys: list[str]) -> tuple[str, bytes]:

@@ -113,6 +113,86 @@ class SizingConfig(_Section):
         return self
 
 
+class CropConfig(_Section):
+    """Random crop drawn from the image header before the size plan (native-resolution pretraining crop).
+
+    `scale` is the share of the image's area kept; `ratio` multiplies the image's own aspect
+    (w/h), so a panorama stays a panorama. No resize to a fixed size: the size plan follows.
+    """
+
+    mode: Literal["none", "random"] = "none"
+    scale: tuple[float, float] = (0.35, 1.0)
+    ratio: tuple[float, float] = (3 / 4, 4 / 3)
+
+    @model_validator(mode="after")
+    def _ranges(self) -> CropConfig:
+        lo, hi = self.scale
+        if not 0 < lo <= hi <= 1:
+            raise ValueError(f"scale must be [lo, hi] with 0 < lo <= hi <= 1 (got {list(self.scale)})")
+        lo, hi = self.ratio
+        if not 0 < lo <= hi:
+            raise ValueError(f"ratio must be [lo, hi] with 0 < lo <= hi (got {list(self.ratio)})")
+        return self
+
+
+class DropConfig(_Section):
+    """Which patch tokens to remove (apply: drop) or flag (apply: mask) before packing."""
+
+    mode: Literal["none", "random", "block", "grid", "stripes", "content"] = "none"
+    apply: Literal["drop", "mask"] = "drop"
+    rate: float | None = Field(default=None, ge=0.0, le=1.0)
+    beta: tuple[float, float] | None = None
+    max_keep: int | None = Field(default=None, ge=1)
+    rate_curve: list[tuple[int, float]] | None = None
+    min_keep: int = Field(default=1, ge=0)
+    stride: int | None = Field(default=None, ge=1)
+    block_min_area: int = Field(default=16, ge=1)
+    block_aspect: tuple[float, float] = (0.3, 1 / 0.3)
+    content_noise: float = Field(default=0.1, ge=0.0)
+
+    @model_validator(mode="after")
+    def _one_rate(self) -> DropConfig:
+        given = [n for n in ("rate", "beta", "max_keep", "rate_curve") if getattr(self, n) is not None]
+        if self.mode == "none":
+            return self
+        if self.mode == "grid" and self.stride is not None:
+            if given:
+                raise ValueError("grid mode takes either `stride` or a rate setting, not both")
+            return self
+        if len(given) != 1:
+            raise ValueError(
+                f"mode {self.mode!r} needs exactly one of rate, beta, max_keep, rate_curve (got "
+                f"{', '.join(given) or 'none'})"
+            )
+        if self.beta is not None and min(self.beta) <= 0:
+            raise ValueError(f"beta parameters must be > 0 (got {list(self.beta)})")
+        if self.rate_curve is not None:
+            xs = [t for t, _ in self.rate_curve]
+            if not xs or xs != sorted(xs) or len(set(xs)) != len(xs):
+                raise ValueError("rate_curve must be [[tokens, rate], ...] with increasing token counts")
+            if any(not 0 <= r <= 1 for _, r in self.rate_curve):
+                raise ValueError("rate_curve rates must be in 0..1")
+        lo, hi = self.block_aspect
+        if not 0 < lo <= hi:
+            raise ValueError(f"block_aspect must be [lo, hi] with 0 < lo <= hi (got {list(self.block_aspect)})")
+        return self
+
+
+PATCH_OPS = ("standardize", "jitter", "shuffle", "noise")
+
+
+class PatchOp(_Section):
+    """One patch-level operation: standardize (per-patch zero mean / unit variance), jitter
+    (per-patch brightness/contrast), shuffle (token order; coords travel), noise (Gaussian)."""
+
+    name: Literal["standardize", "jitter", "shuffle", "noise"]
+    p: float = Field(default=1.0, ge=0.0, le=1.0)
+    brightness: float = Field(default=0.1, ge=0.0)
+    contrast: float = Field(default=0.1, ge=0.0)
+    sigma: float = Field(default=8.0, ge=0.0)
+    eps: float = Field(default=1e-6, gt=0.0)
+
+
 class PackingConfig(_Section):
     """How PatchSets are packed into fixed-shape rows."""
 
@@ -145,9 +225,22 @@ class Recipe(_Section):
     seed: int = 0
     source: SourceConfig = Field(default_factory=SourceConfig)
     decode: DecodeConfig = Field(default_factory=DecodeConfig)
+    crop: CropConfig = Field(default_factory=CropConfig)
     sizing: SizingConfig = Field(default_factory=SizingConfig)
+    augment: list[dict[str, Any]] = Field(default_factory=list)
+    patch_ops: list[PatchOp] = Field(default_factory=list)
+    drop: DropConfig = Field(default_factory=DropConfig)
     packing: PackingConfig = Field(default_factory=PackingConfig)
     output: OutputConfig = Field(default_factory=OutputConfig)
+
+    @field_validator("augment")
+    @classmethod
+    def _augment_builds(cls, v: list[dict[str, Any]]) -> list[dict[str, Any]]:
+        if v:
+            from .augment import validate_augment  # imports albumentations only when used
+
+            validate_augment(v)
+        return v
 
     @model_validator(mode="after")
     def _fits_rows(self) -> Recipe:
@@ -155,6 +248,10 @@ class Recipe(_Section):
             raise ValueError(
                 f"sizing.max_tokens must be <= packing.seq_len (got {self.sizing.max_tokens} > "
                 f"{self.packing.seq_len}): an image bigger than a row could never be packed"
+            )
+        if any(op.name == "standardize" for op in self.patch_ops) and self.output.dtype == "uint8":
+            raise ValueError(
+                "patch_ops standardize makes float patches: set output.dtype to float32 or float16"
             )
         return self
 

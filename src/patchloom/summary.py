@@ -64,8 +64,10 @@ def format_table(stats: RunStats, ledger: dict, *, title: str = "patchloom run")
     width = max(len(k) for k, _ in rows)
     lines = [title, "-" * len(title)]
     lines += [f"  {k:<{width}}  {v}" for k, v in rows]
+    examples = ledger.get("skip_examples", {})
     for reason, n in sorted(ledger.get("skip_reasons", {}).items()):
-        lines.append(f"  {'skipped':<{width}}  {n} x {reason}")
+        eg = ", ".join(examples.get(reason, []))
+        lines.append(f"  {'skipped':<{width}}  {n} x {reason}" + (f"  (e.g. {eg})" if eg else ""))
     for err in ledger.get("shard_errors", []):
         lines.append(f"  {'shard error':<{width}}  {err}")
     return "\n".join(lines)
