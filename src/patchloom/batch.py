@@ -22,6 +22,7 @@ class PackedBatch:
     grids: np.ndarray  # [B, S, 2] int32
     labels: np.ndarray  # [B, S] int64
     keys: list[list[str]] = field(default_factory=list)
+    masked: np.ndarray | None = None  # [B, L] bool, True = token hidden (drop apply: mask); else None
 
     @property
     def rows(self) -> int:
@@ -116,6 +117,7 @@ class PackedBatch:
             "grids": torch.from_numpy(self.grids),
             "labels": torch.from_numpy(self.labels),
             "keys": self.keys,
+            **({"masked": torch.from_numpy(self.masked)} if self.masked is not None else {}),
         }
 
     def to_arrays(self) -> dict[str, np.ndarray]:
@@ -126,4 +128,5 @@ class PackedBatch:
             "coords": self.coords,
             "grids": self.grids,
             "labels": self.labels,
+            **({"masked": self.masked} if self.masked is not None else {}),
         }

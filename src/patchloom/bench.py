@@ -30,7 +30,8 @@ from PIL import Image
 from tqdm import tqdm
 
 from .patches import normalize, patchify
-from .pipeline import Pipeline, parse_label
+from .pipeline import Pipeline
+from .sample import parse_label
 from .recipe import Recipe
 from .sizing import RESAMPLE
 from .sources import ShardTask, expand_shards, read_tasks, shard_order

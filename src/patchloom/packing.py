@@ -98,6 +98,7 @@ def build_batch(
     coords = np.zeros((b, length, 2), dtype=np.int32)
     grids = np.zeros((b, s, 2), dtype=np.int32)
     labels = np.full((b, s), -1, dtype=np.int64)
+    masked = np.zeros((b, length), dtype=bool) if any(p.masked is not None for p in items) else None
     keys: list[list[str]] = []
     for r, row in enumerate(assignment):
         if len(row) > s:
@@ -115,13 +116,15 @@ def build_batch(
             patches[r, pos : pos + n] = ps.patches
             segment_ids[r, pos : pos + n] = j + 1
             coords[r, pos : pos + n] = ps.coords
+            if masked is not None and ps.masked is not None:
+                masked[r, pos : pos + n] = ps.masked
             grids[r, j] = ps.grid
             if ps.label is not None:
                 labels[r, j] = ps.label
             row_keys.append(ps.key)
             pos += n
         keys.append(row_keys)
-    return PackedBatch(patches, segment_ids, coords, grids, labels, keys)
+    return PackedBatch(patches, segment_ids, coords, grids, labels, keys, masked)
 
 
 def pack(

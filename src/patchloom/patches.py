@@ -23,6 +23,7 @@ class PatchSet:
     key: str = ""
     label: int | None = None
     meta: dict[str, Any] = field(default_factory=dict)
+    masked: np.ndarray | None = None  # bool [N]: True = hidden from the model (drop apply: mask)
 
     def __post_init__(self) -> None:
         if self.patches.ndim != 2 or self.coords.shape != (self.patches.shape[0], 2):
@@ -30,6 +31,8 @@ class PatchSet:
                 f"PatchSet {self.key!r}: patches must be [N, D] and coords [N, 2] "
                 f"(got {self.patches.shape} and {self.coords.shape})"
             )
+        if self.masked is not None and self.masked.shape != (self.patches.shape[0],):
+            raise ValueError(f"PatchSet {self.key!r}: masked must be bool [N] (got {self.masked.shape})")
 
     @property
     def num_tokens(self) -> int:
@@ -70,9 +73,12 @@ def grid_coords(grid_h: int, grid_w: int) -> np.ndarray:
 
 
 def normalize(patches: np.ndarray, mean: tuple[float, ...], std: tuple[float, ...], dtype: str) -> np.ndarray:
-    """uint8 patches -> (x/255 - mean)/std per channel in `dtype`; D's channel axis is the fastest."""
+    """Patches on the 0..255 scale -> (x/255 - mean)/std per channel in `dtype`, or uint8 as is
+    (rounded and clipped if float). D's channel axis is the fastest."""
     if dtype == "uint8":
-        return patches
+        if patches.dtype == np.uint8:
+            return patches
+        return np.clip(np.rint(patches), 0, 255).astype(np.uint8)
     channels = len(mean)
     scale = (1.0 / (255.0 * np.asarray(std, dtype=np.float32)))
     shift = (np.asarray(mean, dtype=np.float32) / np.asarray(std, dtype=np.float32))

@@ -1,37 +1,27 @@
 """Pipeline: compose the stages from a Recipe into an iterator of PackedBatch.
 
-record -> header -> size plan -> decoded pixels -> resized -> patches -> Packer -> batches.
+shards -> reader split -> shuffle buffer -> per-sample chain (sample.py) -> Packer -> batches.
 Each sample's random draws come from its own generator (seed, epoch, key, stage), so its tokens do
 not depend on worker count, order or resume point.
 """
 
 from __future__ import annotations
 
-import json
 from collections import Counter
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
-from PIL import Image
 
 from .batch import PackedBatch
-from .decode import OpenedImage, open_image, to_rgb
 from .packing import Packer
-from .patches import PatchSet, grid_coords, normalize, patchify
+from .patches import PatchSet
 from .recipe import Recipe
-from .seeding import sample_rng, stream_rng
-from .sizing import SizePlan, plan_size, resize_to_plan
+from .sample import SampleError, image_to_patches, process_record
+from .seeding import stream_rng
 from .sources import Record, ShuffleBuffer, expand_shards, read_tasks, reader_tasks
 
-
-class SampleError(RuntimeError):
-    """One sample failed; the message names the shard, the key, the stage and the cause."""
-
-    def __init__(self, shard: str, key: str, stage: str, cause: str) -> None:
-        super().__init__(f"shard {shard}, key {key!r}, stage {stage}: {cause}")
-        self.shard, self.key, self.stage, self.cause = shard, key, stage, cause
+__all__ = ["Ledger", "Pipeline", "SampleError", "Skip", "image_to_patches"]
 
 
 @dataclass(slots=True)
@@ -89,109 +79,6 @@ def _gist(reason: str) -> str:
     for stop in (" (", "; ", ": "):
         text = text.split(stop, 1)[0]
     return text.strip()[:80]
-
-
-def _find_image(rec: Record, image_keys: list[str]) -> tuple[str, bytes]:
-    for ext in image_keys:
-        if ext in rec.members:
-            return ext, rec.members[ext]
-    raise ValueError(
-        f"no image member: looked for {', '.join(image_keys)}; found {', '.join(sorted(rec.members)) or 'nothing'} "
-        "(set source.image_keys to the extensions your shards use)"
-    )
-
-
-def parse_label(rec: Record, label_key: str | None) -> int | None:
-    """Label from a member: `cls` (integer text) or `json:field` (a field of a JSON member)."""
-    if label_key is None:
-        return None
-    ext, _, json_field = label_key.partition(":")
-    if ext not in rec.members:
-        return None
-    raw = rec.members[ext]
-    if json_field:
-        value = json.loads(raw.decode("utf-8")).get(json_field)
-    else:
-        value = raw.decode("utf-8").strip()
-    if value is None or value == "":
-        return None
-    try:
-        return int(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"label {label_key!r} must be an integer (got {value!r})") from None
-
-
-def _reduce_hint(opened: OpenedImage, plan: SizePlan) -> tuple[int, int]:
-    """Full-image size at which the plan's crop would already be its resized content size."""
-    left, top, right, bottom = plan.crop
-    return (
-        max(1, round(opened.width * plan.content_w / (right - left))),
-        max(1, round(opened.height * plan.content_h / (bottom - top))),
-    )
-
-
-def pixels_to_patchset(image: Image.Image, plan: SizePlan, recipe: Recipe, *, key: str,
-                       label: int | None, meta: dict[str, Any]) -> PatchSet:
-    """Resize an RGB image to its plan and cut it into a PatchSet (the shared tail of every path)."""
-    resized = resize_to_plan(image, plan, resample=recipe.sizing.resample, background=recipe.decode.background)
-    patches = patchify(np.asarray(resized), plan.patch_size)
-    out = recipe.output
-    patches = normalize(patches, out.mean, out.std, out.dtype)
-    meta = {**meta, "plan": plan.to_dict()}
-    return PatchSet(patches, grid_coords(plan.grid_h, plan.grid_w), (plan.grid_h, plan.grid_w), key, label, meta)
-
-
-def _sizing_rng(recipe: Recipe, seed: int, epoch: int, key: str) -> np.random.Generator | None:
-    return sample_rng(seed, epoch, key, "sizing") if recipe.sizing.mode == "sampled" else None
-
-
-def process_record(rec: Record, recipe: Recipe, epoch: int) -> PatchSet:
-    """One raw record -> PatchSet, raising SampleError naming shard, key and stage on failure."""
-    stage = "select"
-    try:
-        ext, data = _find_image(rec, recipe.source.image_keys)
-        label = parse_label(rec, recipe.source.label_key)
-        stage = "decode"
-        opened = open_image(data, pixel_limit=recipe.decode.pixel_limit)
-        stage = "sizing"
-        plan = plan_size(opened.height, opened.width, recipe.sizing, _sizing_rng(recipe, recipe.seed, epoch, rec.key))
-        stage = "decode"
-        hint = _reduce_hint(opened, plan) if recipe.decode.reduced_jpeg else None
-        image = opened.decode(background=recipe.decode.background, reduce_to=hint)
-        stage = "patches"
-        meta = {"shard": rec.url, "index": rec.index, "member": ext, "format": opened.format,
-                "mode": opened.mode, "size": [opened.height, opened.width]}
-        return pixels_to_patchset(image, plan, recipe, key=rec.key, label=label, meta=meta)
-    except SampleError:
-        raise
-    except Exception as exc:
-        raise SampleError(rec.url, rec.key, stage, f"{type(exc).__name__}: {exc}") from exc
-
-
-def image_to_patches(image: np.ndarray | Image.Image, recipe: Recipe, seed: int | None = None,
-                     key: str = "", *, epoch: int = 0, label: int | None = None) -> PatchSet:
-    """One image (HxWx3 uint8 array or PIL image) -> PatchSet under the recipe, without shards.
-
-    `seed` plays the role of the recipe's seed for this call's random draws (None: the recipe's),
-    so the same (seed, epoch, key) gives the same tokens as the pipeline would.
-    """
-    if isinstance(image, np.ndarray):
-        if image.ndim == 2:
-            image = np.repeat(image[:, :, None], 3, axis=2)
-        if image.ndim != 3 or image.shape[2] not in (3, 4) or image.dtype != np.uint8:
-            raise ValueError(
-                f"image must be an HxWx3 uint8 array (got shape {image.shape}, dtype {image.dtype})"
-            )
-        pil = Image.fromarray(image)
-    elif isinstance(image, Image.Image):
-        pil = image
-    else:
-        raise TypeError(f"image must be a numpy array or a PIL image (got {type(image).__name__})")
-    pil = to_rgb(pil, background=recipe.decode.background)
-    seed = recipe.seed if seed is None else seed
-    plan = plan_size(pil.height, pil.width, recipe.sizing, _sizing_rng(recipe, seed, epoch, key))
-    meta = {"size": [pil.height, pil.width]}
-    return pixels_to_patchset(pil, plan, recipe, key=key, label=label, meta=meta)
 
 
 class Pipeline:

@@ -249,10 +249,15 @@ class Recipe(_Section):
                 f"sizing.max_tokens must be <= packing.seq_len (got {self.sizing.max_tokens} > "
                 f"{self.packing.seq_len}): an image bigger than a row could never be packed"
             )
-        if any(op.name == "standardize" for op in self.patch_ops) and self.output.dtype == "uint8":
-            raise ValueError(
-                "patch_ops standardize makes float patches: set output.dtype to float32 or float16"
-            )
+        names = [op.name for op in self.patch_ops]
+        if "standardize" in names:
+            if self.output.dtype == "uint8":
+                raise ValueError("patch_ops standardize makes float patches: set output.dtype to float32 or float16")
+            i = names.index("standardize")
+            if self.patch_ops[i].p != 1.0:
+                raise ValueError("patch_ops standardize must have p: 1 (every image on the same scale)")
+            if any(n in ("jitter", "noise", "standardize") for n in names[i + 1 :]):
+                raise ValueError("patch_ops standardize must come after jitter and noise (only shuffle may follow)")
         return self
 
     @classmethod

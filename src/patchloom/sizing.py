@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 from PIL import Image
 
-from .recipe import SizingConfig
+from .recipe import CropConfig, SizingConfig
 
 #: Budget mode uses at least this share of max_tokens (the grid may trade a little aspect accuracy
 #: for it). With it, any aspect ratio within 1:4..4:1 gets a grid using >= 85 % of the budget.
@@ -162,30 +162,67 @@ def draw_budget(cfg: SizingConfig, rng: np.random.Generator | None) -> int:
     return int(rng.choice(np.asarray(s.choices), p=weights))
 
 
-def plan_size(height: int, width: int, cfg: SizingConfig, rng: np.random.Generator | None = None) -> SizePlan:
-    """Decide the size plan for an image of `height` x `width` pixels (display orientation)."""
+def draw_crop(height: int, width: int, cfg: CropConfig, rng: np.random.Generator) -> tuple[int, int, int, int]:
+    """A random crop box (left, top, right, bottom) keeping `scale` of the area, with the image's
+    own aspect times a log-uniform factor from `ratio`; no resize (the size plan follows).
+
+    Up to 10 draws are tried for a box that fits; otherwise the whole image is kept.
+    """
+    if cfg.mode == "none":
+        return (0, 0, width, height)
+    area = height * width
+    log_lo, log_hi = math.log(cfg.ratio[0]), math.log(cfg.ratio[1])
+    for _ in range(10):
+        share = rng.uniform(cfg.scale[0], cfg.scale[1])
+        aspect = (width / height) * math.exp(rng.uniform(log_lo, log_hi))  # w / h of the crop
+        crop_w = round(math.sqrt(share * area * aspect))
+        crop_h = round(math.sqrt(share * area / aspect))
+        if 1 <= crop_w <= width and 1 <= crop_h <= height:
+            left = int(rng.integers(0, width - crop_w + 1))
+            top = int(rng.integers(0, height - crop_h + 1))
+            return (left, top, left + crop_w, top + crop_h)
+    return (0, 0, width, height)
+
+
+def plan_size(
+    height: int,
+    width: int,
+    cfg: SizingConfig,
+    rng: np.random.Generator | None = None,
+    *,
+    region: tuple[int, int, int, int] | None = None,
+) -> SizePlan:
+    """Decide the size plan for an image of `height` x `width` pixels (display orientation).
+
+    `region` (left, top, right, bottom) restricts the plan to part of the image (a random crop);
+    the max_aspect rule then applies within it.
+    """
     if height < 1 or width < 1:
         raise ValueError(f"image has no pixels ({width}x{height})")
     p = cfg.patch_size
     budget = draw_budget(cfg, rng)
-    crop = (0, 0, width, height)
-    region_h, region_w = float(height), float(width)
+    x0, y0, x1, y1 = region if region is not None else (0, 0, width, height)
+    if not (0 <= x0 < x1 <= width and 0 <= y0 < y1 <= height):
+        raise ValueError(f"region {region} is not inside the {width}x{height} image")
+    crop = (x0, y0, x1, y1)
+    rh, rw = y1 - y0, x1 - x0
+    region_h, region_w = float(rh), float(rw)
     limit = cfg.max_aspect
-    aspect = height / width
+    aspect = rh / rw
     over = limit is not None and cfg.mode != "fixed" and max(aspect, 1 / aspect) > limit
     if over and cfg.aspect_rule == "crop":
         # Centre-crop the long side down to the limit (floored, so the result never exceeds it).
         if aspect > 1:
-            keep = max(1, min(height, math.floor(width * limit)))
-            top = (height - keep) // 2
-            crop = (0, top, width, top + keep)
+            keep = max(1, min(rh, math.floor(rw * limit)))
+            top = y0 + (rh - keep) // 2
+            crop = (x0, top, x1, top + keep)
         else:
-            keep = max(1, min(width, math.floor(height * limit)))
-            left = (width - keep) // 2
-            crop = (left, 0, left + keep, height)
+            keep = max(1, min(rw, math.floor(rh * limit)))
+            left = x0 + (rw - keep) // 2
+            crop = (left, y0, left + keep, y1)
         region_h, region_w = crop[3] - crop[1], crop[2] - crop[0]
     if over and cfg.aspect_rule == "pad":
-        # Plan the grid for the limit aspect, then fit the whole image inside it.
+        # Plan the grid for the limit aspect, then fit the whole region inside it.
         padded_h, padded_w = (region_w * limit, region_w) if aspect > 1 else (region_h, region_h * limit)
         gh, gw = plan_grid(padded_h, padded_w, cfg, budget)
         fit = min(gh * p / region_h, gw * p / region_w)

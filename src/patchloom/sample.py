@@ -1,0 +1,207 @@
+"""One sample, from raw record or pixels to PatchSet: the per-image chain of stages.
+
+header -> [augment before sizing] -> crop + size plan -> decode -> resize -> [augment after resize]
+-> patchify -> drop -> patch ops -> output dtype.
+
+Every random draw comes from `sample_rng(seed, epoch, key, stage)`, so a sample's tokens depend
+only on (recipe, epoch, key). With no geometric augmentation before sizing, the plan is made from
+the header alone and the decoder may skip detail the plan discards (reduced JPEG decode).
+"""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+import numpy as np
+from PIL import Image
+
+from .decode import OpenedImage, open_image, to_rgb
+from .patches import PatchSet, grid_coords, normalize, patchify
+from .recipe import Recipe
+from .seeding import sample_rng
+from .sizing import SizePlan, draw_crop, plan_size, resize_to_plan
+from .sources import Record
+
+
+class SampleError(RuntimeError):
+    """One sample failed; the message names the shard, the key, the stage and the cause."""
+
+    def __init__(self, shard: str, key: str, stage: str, cause: str) -> None:
+        super().__init__(f"shard {shard}, key {key!r}, stage {stage}: {cause}")
+        self.shard, self.key, self.stage, self.cause = shard, key, stage, cause
+
+
+class _Stage:
+    """Which stage is running, so one wrapper can name it when anything fails."""
+
+    __slots__ = ("name",)
+
+    def __init__(self) -> None:
+        self.name = "select"
+
+
+def _seed32(seed: int, epoch: int, key: str, stage: str) -> int:
+    """A 32-bit seed for libraries that take an integer (albumentations), from the RNG rule."""
+    return int(sample_rng(seed, epoch, key, stage).integers(0, 2**31 - 1))
+
+
+def _augmenter(recipe: Recipe):
+    if not recipe.augment:
+        return None
+    from .augment import augmenter_for  # imports albumentations only when a recipe uses it
+
+    return augmenter_for(recipe.augment)
+
+
+def find_image(rec: Record, image_keys: list[str]) -> tuple[str, bytes]:
+    for ext in image_keys:
+        if ext in rec.members:
+            return ext, rec.members[ext]
+    raise ValueError(
+        f"no image member: looked for {', '.join(image_keys)}; found {', '.join(sorted(rec.members)) or 'nothing'} "
+        "(set source.image_keys to the extensions your shards use)"
+    )
+
+
+def parse_label(rec: Record, label_key: str | None) -> int | None:
+    """Label from a member: `cls` (integer text) or `json:field` (a field of a JSON member)."""
+    if label_key is None:
+        return None
+    ext, _, json_field = label_key.partition(":")
+    if ext not in rec.members:
+        return None
+    raw = rec.members[ext]
+    if json_field:
+        value = json.loads(raw.decode("utf-8")).get(json_field)
+    else:
+        value = raw.decode("utf-8").strip()
+    if value is None or value == "":
+        return None
+    try:
+        return int(value)
+    except (TypeError, ValueError):
+        raise ValueError(f"label {label_key!r} must be an integer (got {value!r})") from None
+
+
+def plan_for(height: int, width: int, recipe: Recipe, *, seed: int, epoch: int, key: str) -> SizePlan:
+    """Random crop (if any) then the size plan, both drawn from the sample's own generators."""
+    region = None
+    if recipe.crop.mode != "none":
+        region = draw_crop(height, width, recipe.crop, sample_rng(seed, epoch, key, "crop"))
+    rng = sample_rng(seed, epoch, key, "sizing") if recipe.sizing.mode == "sampled" else None
+    return plan_size(height, width, recipe.sizing, rng, region=region)
+
+
+def _reduce_hint(opened: OpenedImage, plan: SizePlan) -> tuple[int, int]:
+    """Full-image size at which the plan's crop would already be its resized content size."""
+    left, top, right, bottom = plan.crop
+    return (
+        max(1, round(opened.width * plan.content_w / (right - left))),
+        max(1, round(opened.height * plan.content_h / (bottom - top))),
+    )
+
+
+def finish(image: Image.Image, plan: SizePlan, recipe: Recipe, *, seed: int, epoch: int, key: str,
+           label: int | None, meta: dict[str, Any], stage: _Stage | None = None) -> PatchSet:
+    """Resize to the plan, augment after resize, patchify, drop, patch ops, output dtype."""
+    stage = stage or _Stage()
+    stage.name = "resize"
+    resized = np.asarray(resize_to_plan(image, plan, resample=recipe.sizing.resample,
+                                        background=recipe.decode.background))
+    aug = _augmenter(recipe)
+    if aug is not None and aug.has_after:
+        stage.name = "augment"
+        resized = aug.after_resize(resized, _seed32(seed, epoch, key, "augment-after"))
+    stage.name = "patches"
+    grid = (plan.grid_h, plan.grid_w)
+    ps = PatchSet(patchify(resized, plan.patch_size), grid_coords(*grid), grid, key, label,
+                  {**meta, "plan": plan.to_dict()})
+    if recipe.drop.mode != "none":
+        stage.name = "drop"
+        from .dropping import apply_drop, decide_drop
+
+        decision = decide_drop(recipe.drop, grid, ps.patches, sample_rng(seed, epoch, key, "drop"))
+        ps = apply_drop(ps, decision, recipe.drop.apply)
+    out = recipe.output
+    if recipe.patch_ops:
+        stage.name = "patch_ops"
+        from .patchops import apply_patch_ops
+
+        extra = [ps.coords] + ([ps.masked] if ps.masked is not None else [])
+        values, extra, standardized = apply_patch_ops(ps.patches, recipe.patch_ops,
+                                                      sample_rng(seed, epoch, key, "patch_ops"), extra=extra)
+        ps.coords = extra[0]
+        if ps.masked is not None:
+            ps.masked = extra[1]
+        ps.patches = values.astype(out.dtype) if standardized else normalize(values, out.mean, out.std, out.dtype)
+    else:
+        ps.patches = normalize(ps.patches, out.mean, out.std, out.dtype)
+    return ps
+
+
+def from_pixels(image: Image.Image, recipe: Recipe, *, seed: int, epoch: int, key: str, label: int | None,
+                meta: dict[str, Any], stage: _Stage | None = None) -> PatchSet:
+    """Decoded RGB image -> PatchSet (augment before sizing, plan from the pixels, finish)."""
+    stage = stage or _Stage()
+    aug = _augmenter(recipe)
+    if aug is not None and aug.has_before:
+        stage.name = "augment"
+        image = Image.fromarray(aug.before_sizing(np.asarray(image), _seed32(seed, epoch, key, "augment-before")))
+    stage.name = "sizing"
+    plan = plan_for(image.height, image.width, recipe, seed=seed, epoch=epoch, key=key)
+    return finish(image, plan, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage)
+
+
+def process_record(rec: Record, recipe: Recipe, epoch: int) -> PatchSet:
+    """One raw record -> PatchSet, raising SampleError naming shard, key and stage on failure."""
+    stage = _Stage()
+    seed, key = recipe.seed, rec.key
+    try:
+        ext, data = find_image(rec, recipe.source.image_keys)
+        label = parse_label(rec, recipe.source.label_key)
+        stage.name = "decode"
+        opened = open_image(data, pixel_limit=recipe.decode.pixel_limit)
+        meta = {"shard": rec.url, "index": rec.index, "member": ext, "format": opened.format,
+                "mode": opened.mode, "size": [opened.height, opened.width]}
+        bg = recipe.decode.background
+        aug = _augmenter(recipe)
+        if aug is not None and aug.has_before:
+            # Geometry changes the size first, so the plan needs the full decoded pixels.
+            image = opened.decode(background=bg)
+            return from_pixels(image, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage)
+        stage.name = "sizing"
+        plan = plan_for(opened.height, opened.width, recipe, seed=seed, epoch=epoch, key=key)
+        stage.name = "decode"
+        hint = _reduce_hint(opened, plan) if recipe.decode.reduced_jpeg else None
+        image = opened.decode(background=bg, reduce_to=hint)
+        return finish(image, plan, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage)
+    except SampleError:
+        raise
+    except Exception as exc:
+        raise SampleError(rec.url, rec.key, stage.name, f"{type(exc).__name__}: {exc}") from exc
+
+
+def image_to_patches(image: np.ndarray | Image.Image, recipe: Recipe, seed: int | None = None,
+                     key: str = "", *, epoch: int = 0, label: int | None = None) -> PatchSet:
+    """One image (HxWx3 uint8 array or PIL image) -> PatchSet under the recipe, without shards.
+
+    `seed` plays the role of the recipe's seed for this call's random draws (None: the recipe's),
+    so the same (seed, epoch, key) gives the same tokens as the pipeline would.
+    """
+    if isinstance(image, np.ndarray):
+        if image.ndim == 2:
+            image = np.repeat(image[:, :, None], 3, axis=2)
+        if image.ndim != 3 or image.shape[2] not in (3, 4) or image.dtype != np.uint8:
+            raise ValueError(
+                f"image must be an HxWx3 uint8 array (got shape {image.shape}, dtype {image.dtype})"
+            )
+        pil = Image.fromarray(image)
+    elif isinstance(image, Image.Image):
+        pil = image
+    else:
+        raise TypeError(f"image must be a numpy array or a PIL image (got {type(image).__name__})")
+    pil = to_rgb(pil, background=recipe.decode.background)
+    seed = recipe.seed if seed is None else seed
+    return from_pixels(pil, recipe, seed=seed, epoch=epoch, key=key, label=label,
+                       meta={"size": [pil.height, pil.width]})
