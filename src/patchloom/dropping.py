@@ -1,0 +1,420 @@
+"""Token dropping: decide which patch tokens of one image to remove (or mask), then apply it.
+
+Draw first, then apply. `decide_drop` makes every random choice for one image into a small
+`DropDecision` (a keep mask in raster order of the patch grid, the drawn rate, and the blocks in
+block mode); `apply_drop` applies a decision to a PatchSet with no randomness at all. The mode
+functions are plain numpy functions of a grid (or of the patches), a rate and a generator:
+
+- `drop_random`   exactly `count` tokens, uniformly at random;
+- `drop_block`    blockwise masking (Bao et al. 2021, BEiT): random rectangles until the count;
+- `drop_grid`     keep a strided sub-grid (every k-th row and column, random offsets);
+- `drop_stripes`  whole random rows or columns;
+- `drop_content`  the least informative patches (lowest pixel variance) first.
+
+Rules shared by every mode:
+
+- The target number of dropped tokens for a rate on n tokens is `rate * n` rounded half up
+  (`drop_count`).
+- `min_keep`: every mode function takes it as a keyword and never keeps fewer than
+  min(min_keep, n) tokens, enforced in the way that keeps the mode's shape: random and content
+  cap the count at n - min_keep before drawing (so the kept set is still uniform / still the most
+  informative); block skips any block that would leave too few tokens; stripes never takes a
+  stripe that would leave too few; grid lowers the stride until the lattice keeps enough.
+  `decide_drop` passes `DropConfig.min_keep` through.
+- The generator is always passed in; nothing here reads global random state.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from .patches import PatchSet
+from .recipe import DropConfig
+
+Rect = tuple[int, int, int, int]  # (top, left, height, width) in patch-grid units
+
+#: drop_block stops after this many draws in a row that give no acceptable block.
+BLOCK_MAX_FAILS = 32
+#: after this many rejected attempts in a row, drop_block places blocks over a still-kept token.
+BLOCK_ANCHOR_AFTER = 8
+_BLOCK_DRAWS = 16  # uniforms are drawn in chunks of this many attempts (5 numbers an attempt)
+
+
+@dataclass(slots=True, frozen=True, eq=False)  # arrays inside: compare fields explicitly
+class DropDecision:
+    """Which tokens of one image survive, decided before anything is applied.
+
+    `keep` is bool [gh*gw] in raster order of the patch grid (True = kept; in mask mode: visible).
+    `rate` is the target drop rate drawn for this image (the realised share can differ: rounding,
+    block and stripe granularity, min_keep). `blocks` lists the (top, left, height, width)
+    rectangles in block mode, in the order they were drawn; their union is the dropped set.
+    `mode` is the DropConfig mode that made the decision.
+    """
+
+    keep: np.ndarray
+    rate: float
+    blocks: tuple[Rect, ...] = ()
+    mode: str = "none"
+
+    @property
+    def kept(self) -> int:
+        return int(np.count_nonzero(self.keep))
+
+    @property
+    def total(self) -> int:
+        return int(self.keep.size)
+
+
+# ---------------------------------------------------------------------------------------------
+# shared helpers
+
+
+def _check_rate(rate: float) -> float:
+    rate = float(rate)
+    if not 0.0 <= rate <= 1.0:  # also refuses NaN
+        raise ValueError(f"drop rate must be in 0..1 (got {rate})")
+    return rate
+
+
+def _check_grid(grid: tuple[int, int]) -> tuple[int, int]:
+    gh, gw = (int(v) for v in grid)
+    if gh < 1 or gw < 1:
+        raise ValueError(f"grid must be (grid_h, grid_w) with both >= 1 (got {tuple(grid)})")
+    return gh, gw
+
+
+def drop_count(rate: float, n: int) -> int:
+    """Target number of dropped tokens: rate * n rounded half up (so 0.5 of 3 tokens is 2)."""
+    return min(int(n), math.floor(_check_rate(rate) * n + 0.5))
+
+
+def _floor_kept(min_keep: int, n: int) -> int:
+    return min(max(int(min_keep), 0), int(n))
+
+
+# ---------------------------------------------------------------------------------------------
+# the rate
+
+
+def target_rate(cfg: DropConfig, n_tokens: int, rng: np.random.Generator) -> float:
+    """The target drop rate for one image of `n_tokens` tokens, from whichever setting cfg gives.
+
+    rate: that fixed value. beta (a, b): one draw from Beta(a, b) per image (the only setting that
+    uses `rng`). max_keep K: max(0, 1 - K/n), so about K tokens stay. rate_curve
+    [[tokens, rate], ...]: piecewise-linear in the token count, flat beyond the first and last
+    points. Grid mode with a fixed `stride` k and no rate setting: the nominal 1 - 1/k^2.
+    Nothing given (mode none): 0.
+    """
+    n = int(n_tokens)
+    if cfg.rate is not None:
+        return float(cfg.rate)
+    if cfg.beta is not None:
+        a, b = cfg.beta
+        return float(rng.beta(a, b))
+    if cfg.max_keep is not None:
+        return max(0.0, 1.0 - cfg.max_keep / n) if n > 0 else 0.0
+    if cfg.rate_curve is not None:
+        xs = [float(t) for t, _ in cfg.rate_curve]
+        ys = [float(r) for _, r in cfg.rate_curve]
+        return float(np.interp(float(n), xs, ys))
+    if cfg.mode == "grid" and cfg.stride is not None:
+        return 1.0 - 1.0 / cfg.stride**2
+    return 0.0
+
+
+# ---------------------------------------------------------------------------------------------
+# the modes
+
+
+def drop_random(n: int, rate: float, rng: np.random.Generator, *, min_keep: int = 0) -> np.ndarray:
+    """bool [n] keep mask with exactly min(drop_count(rate, n), n - min_keep) tokens dropped,
+    the dropped set uniform over all sets of that size."""
+    n = int(n)
+    k = min(drop_count(rate, n), n - _floor_kept(min_keep, n))
+    keep = np.ones(n, dtype=bool)
+    keep[rng.permutation(n)[:k]] = False
+    return keep
+
+
+def largest_block(grid: tuple[int, int], aspect: tuple[float, float]) -> int:
+    """Area of the largest h x w rectangle inside the grid with aspect[0] <= h/w <= aspect[1]
+    (0 when none fits, e.g. only tall blocks allowed on a one-row grid)."""
+    gh, gw = _check_grid(grid)
+    lo, hi = aspect
+    h = np.arange(1, gh + 1)[:, None]
+    w = np.arange(1, gw + 1)[None, :]
+    ratio = h / w
+    ok = (ratio >= lo) & (ratio <= hi)
+    return int(np.max(np.where(ok, h * w, 0)))
+
+
+def drop_block(grid: tuple[int, int], rate: float, rng: np.random.Generator, *, min_area: int = 16,
+               aspect: tuple[float, float] = (0.3, 1 / 0.3), min_keep: int = 0) -> tuple[np.ndarray, list[Rect]]:
+    """Blockwise masking (Bao et al. 2021, BEiT): drop random rectangles until the target count.
+
+    Each attempt draws an area s ~ U[min_area, min(remaining, largest)] (remaining = target minus
+    dropped so far; when remaining < min_area, s = min_area), an aspect r log-uniform within
+    `aspect` - narrowed to the part where a block of area s fits the grid, so elongated grids do
+    not waste attempts - then h = round(sqrt(s*r)), w = round(sqrt(s/r)) and a uniform position.
+    A block is accepted only when h*w >= min_area, aspect[0] <= h/w <= aspect[1], it lies inside
+    the grid, and it drops at least one new token. Overshoot rule: a block is also skipped when it
+    would end at least as far from the target as before, i.e. when its new tokens are >= 2 x the
+    tokens still missing (BEiT skips any overshoot; allowing a smaller one lets the count land on
+    either side of the target, and any overshoot is under half the last block). A block that would
+    leave fewer than min(min_keep, n) tokens is skipped too (the target is also capped at
+    n - min_keep). It stops at the target or after BLOCK_MAX_FAILS rejected attempts in a row.
+
+    Tiny grids: min_area is clamped to the largest block that fits the grid within `aspect`
+    (the grid area when the grid's own shape is within `aspect`; 3 on a 1x50 grid with the
+    default aspect, whose blocks are at most 1x3). So on a 3x3 grid with min_area 16 the only
+    block is the whole grid, and a rate that it would overshoot too far drops nothing. When no
+    rectangle within `aspect` fits the grid at all, nothing is dropped.
+
+    Returns (keep, rects): keep is bool [gh*gw] in raster order, rects the accepted
+    (top, left, height, width) blocks in draw order; their union is exactly the dropped set.
+    """
+    gh, gw = _check_grid(grid)
+    lo, hi = (float(v) for v in aspect)
+    if not 0 < lo <= hi:
+        raise ValueError(f"aspect must be (lo, hi) with 0 < lo <= hi (got {tuple(aspect)})")
+    n = gh * gw
+    floor = _floor_kept(min_keep, n)
+    target = min(drop_count(rate, n), n - floor)
+    keep = np.ones((gh, gw), dtype=bool)
+    rects: list[Rect] = []
+    fit = largest_block((gh, gw), (lo, hi))
+    if target == 0 or fit == 0:
+        return keep.reshape(-1), rects
+    a_min = min(int(min_area), fit)
+    log_lo, log_hi = math.log(lo), math.log(hi)
+    log_h2, log_w2 = 2 * math.log(gh + 0.5), 2 * math.log(gw + 0.5)  # round() keeps h <= gh here
+    dropped = fails = 0
+    draws: list[list[float]] = []
+    while dropped < target and fails < BLOCK_MAX_FAILS:
+        if not draws:
+            draws = rng.random((_BLOCK_DRAWS, 5)).tolist()
+            draws.reverse()
+        u_s, u_r, u_t, u_l, u_a = draws.pop()
+        fails += 1
+        remaining = target - dropped
+        s = a_min + u_s * (max(a_min, min(remaining, fit)) - a_min)
+        log_s = math.log(s)
+        r_lo, r_hi = max(log_lo, log_s - log_w2), min(log_hi, log_h2 - log_s)
+        if r_lo > r_hi:
+            continue
+        r = math.exp(r_lo + u_r * (r_hi - r_lo))
+        h, w = math.floor(math.sqrt(s * r) + 0.5), math.floor(math.sqrt(s / r) + 0.5)
+        if not (1 <= h <= gh and 1 <= w <= gw and h * w >= a_min and lo <= h / w <= hi):
+            continue
+        if fails <= BLOCK_ANCHOR_AFTER:
+            top, left = int(u_t * (gh - h + 1)), int(u_l * (gw - w + 1))
+        else:  # stuck: place the block over a random still-kept token (uniform among such places)
+            r, c = divmod(int(np.flatnonzero(keep)[int(u_a * (n - dropped))]), gw)
+            t0, l0 = max(0, r - h + 1), max(0, c - w + 1)
+            top = t0 + int(u_t * (min(r, gh - h) - t0 + 1))
+            left = l0 + int(u_l * (min(c, gw - w) - l0 + 1))
+        new = int(np.count_nonzero(keep[top : top + h, left : left + w]))
+        if new == 0 or new >= 2 * remaining or n - dropped - new < floor:
+            continue
+        keep[top : top + h, left : left + w] = False
+        dropped += new
+        rects.append((top, left, h, w))
+        fails = 0
+    return keep.reshape(-1), rects
+
+
+def grid_stride(grid: tuple[int, int], rate: float) -> int:
+    """The stride k >= 1 whose nominal kept share 1/k^2 is closest to 1 - rate (ties: the smaller
+    k). k is at most max(gh, gw): a larger stride keeps the same single token."""
+    gh, gw = _check_grid(grid)
+    ks = np.arange(1, max(gh, gw) + 1, dtype=np.float64)
+    return int(np.argmin(np.abs(1.0 / ks**2 - (1.0 - _check_rate(rate))))) + 1
+
+
+def drop_grid(grid: tuple[int, int], rate: float | None, rng: np.random.Generator, *,
+              stride: int | None = None, min_keep: int = 0) -> np.ndarray:
+    """Keep a strided sub-grid: rows r0, r0+k, ... and columns c0, c0+k, ...; drop the rest.
+
+    k is `stride` when given (the rate is then ignored), else `grid_stride(grid, rate)`. The
+    offsets are uniform in [0, min(k, gh)) and [0, min(k, gw)), so at least one row and one
+    column - at least one token - always stay, even at rate 1. If the lattice keeps fewer than
+    min(min_keep, n) tokens, k is lowered one step at a time (same offset draws, rescaled) until
+    it keeps enough; k = 1 keeps everything.
+    """
+    gh, gw = _check_grid(grid)
+    if stride is None:
+        if rate is None:
+            raise ValueError("drop_grid needs a rate or a stride")
+        k = grid_stride((gh, gw), rate)
+    else:
+        k = int(stride)
+        if k < 1:
+            raise ValueError(f"stride must be >= 1 (got {stride})")
+    floor = _floor_kept(min_keep, gh * gw)
+    u_r, u_c = rng.random(2)
+    while True:
+        r0, c0 = int(u_r * min(k, gh)), int(u_c * min(k, gw))
+        rows, cols = np.zeros(gh, dtype=bool), np.zeros(gw, dtype=bool)
+        rows[r0::k] = True
+        cols[c0::k] = True
+        if k == 1 or np.count_nonzero(rows) * np.count_nonzero(cols) >= floor:
+            return np.outer(rows, cols).reshape(-1)
+        k -= 1
+
+
+def drop_stripes(grid: tuple[int, int], rate: float, rng: np.random.Generator, *, min_keep: int = 0) -> np.ndarray:
+    """Drop whole random rows or columns until at least drop_count(rate, n) tokens are dropped.
+
+    Each stripe picks rows or columns with a fair coin, then a random row (column) not yet
+    dropped. The last stripe may overshoot the target by less than its own length (one stripe
+    at most). A stripe that would leave fewer than min(min_keep, n) tokens is never taken: the
+    other orientation is used instead, and when neither can be taken it stops short of the target.
+    """
+    gh, gw = _check_grid(grid)
+    n = gh * gw
+    target = drop_count(rate, n)
+    floor = _floor_kept(min_keep, n)
+    row_order, col_order = rng.permutation(gh), rng.permutation(gw)
+    coins = rng.random(gh + gw) < 0.5  # True: this stripe is a row
+    rows_left, cols_left = gh, gw  # kept tokens = rows_left * cols_left
+    for coin in coins.tolist():
+        if n - rows_left * cols_left >= target:
+            break
+        can_row = rows_left > 0 and (rows_left - 1) * cols_left >= floor
+        can_col = cols_left > 0 and rows_left * (cols_left - 1) >= floor
+        if not (can_row or can_col):
+            break
+        if can_row and (coin or not can_col):
+            rows_left -= 1
+        else:
+            cols_left -= 1
+    rows, cols = np.ones(gh, dtype=bool), np.ones(gw, dtype=bool)
+    rows[row_order[: gh - rows_left]] = False
+    cols[col_order[: gw - cols_left]] = False
+    return np.outer(rows, cols).reshape(-1)
+
+
+def content_scores(patches: np.ndarray) -> np.ndarray:
+    """float64 [N]: each patch's variance over its D values (flat patches score exactly 0)."""
+    x = np.asarray(patches)
+    if x.ndim != 2:
+        raise ValueError(f"patches must be [N, D] (got shape {x.shape})")
+    d = x.shape[1]
+    if x.dtype == np.uint8 and 0 < d <= 33_000:  # exact integer sums; 33_000 * 255^2 < 2^31
+        xi = x.astype(np.int32)
+        s1 = xi.sum(axis=1, dtype=np.int64)
+        s2 = np.einsum("ij,ij->i", xi, xi).astype(np.int64)
+        return (s2 * d - s1 * s1) / float(d * d)
+    return x.var(axis=1, dtype=np.float64)
+
+
+def drop_content(patches: np.ndarray, rate: float, rng: np.random.Generator, *, noise: float = 0.1,
+                 min_keep: int = 0) -> np.ndarray:
+    """Drop the least informative patches first; bool [N] keep mask in the patches' order.
+
+    score = per-patch variance of its values + noise * std(scores) * N(0, 1) jitter, so the choice
+    is not fully deterministic near the cut; the min(drop_count(rate, N), N - min_keep) lowest
+    scores are dropped. Equal scores (e.g. a flat image, noise 0) are broken at random.
+    """
+    if noise < 0:
+        raise ValueError(f"noise must be >= 0 (got {noise})")
+    scores = content_scores(patches)
+    n = scores.shape[0]
+    k = min(drop_count(rate, n), n - _floor_kept(min_keep, n))
+    jitter = rng.standard_normal(n)
+    ties = rng.random(n)
+    if noise > 0 and n > 1:
+        scores = scores + (noise * float(scores.std())) * jitter
+    keep = np.ones(n, dtype=bool)
+    keep[np.lexsort((ties, scores))[:k]] = False
+    return keep
+
+
+# ---------------------------------------------------------------------------------------------
+# decide, then apply
+
+
+def _raster(patches: np.ndarray | None, coords: np.ndarray | None, grid: tuple[int, int]) -> np.ndarray:
+    gh, gw = grid
+    n = gh * gw
+    if patches is None:
+        raise ValueError("content mode needs the patches")
+    x = np.asarray(patches)
+    if x.ndim != 2 or x.shape[0] != n:
+        raise ValueError(f"content mode needs all {gh}x{gw} = {n} patches as [N, D] (got shape {x.shape})")
+    if coords is None:
+        return x
+    c = np.asarray(coords)
+    if c.shape != (n, 2) or c.min(initial=0) < 0 or (c[:, 0] >= gh).any() or (c[:, 1] >= gw).any():
+        raise ValueError(f"coords must be [N, 2] places in the {gh}x{gw} grid (got shape {c.shape})")
+    flat = c[:, 0].astype(np.int64) * gw + c[:, 1]
+    if np.bincount(flat, minlength=n).max(initial=0) > 1:
+        raise ValueError("coords must name every grid place once")
+    out = np.empty_like(x)
+    out[flat] = x
+    return out
+
+
+def decide_drop(cfg: DropConfig, grid: tuple[int, int], patches: np.ndarray | None,
+                rng: np.random.Generator, *, coords: np.ndarray | None = None) -> DropDecision:
+    """Every random choice of token dropping for one image, as a DropDecision.
+
+    Mode none keeps everything. Otherwise: the rate from `target_rate`, then the mode's function
+    with cfg's options and `min_keep=cfg.min_keep` (see the module docstring for how each mode
+    honours it). `patches` ([gh*gw, D], raster order) is only read in content mode and may be None
+    otherwise; pass `coords` when the patches are not in raster order.
+    """
+    gh, gw = _check_grid(grid)
+    n = gh * gw
+    if cfg.mode == "none":
+        return DropDecision(np.ones(n, dtype=bool), 0.0, (), "none")
+    rate = target_rate(cfg, n, rng)
+    blocks: tuple[Rect, ...] = ()
+    if cfg.mode == "random":
+        keep = drop_random(n, rate, rng, min_keep=cfg.min_keep)
+    elif cfg.mode == "block":
+        keep, rects = drop_block((gh, gw), rate, rng, min_area=cfg.block_min_area, aspect=cfg.block_aspect,
+                                 min_keep=cfg.min_keep)
+        blocks = tuple(rects)
+    elif cfg.mode == "grid":
+        keep = drop_grid((gh, gw), rate, rng, stride=cfg.stride, min_keep=cfg.min_keep)
+    elif cfg.mode == "stripes":
+        keep = drop_stripes((gh, gw), rate, rng, min_keep=cfg.min_keep)
+    elif cfg.mode == "content":
+        keep = drop_content(_raster(patches, coords, (gh, gw)), rate, rng, noise=cfg.content_noise,
+                            min_keep=cfg.min_keep)
+    else:
+        raise ValueError(f"unknown drop mode {cfg.mode!r}")
+    return DropDecision(keep, rate, blocks, cfg.mode)
+
+
+def apply_drop(ps: PatchSet, decision: DropDecision, how: str) -> PatchSet:
+    """A new PatchSet with the decision applied; no randomness. `ps` is not changed.
+
+    Tokens are matched to the decision's raster-order mask through their coords, so a PatchSet
+    whose tokens were reordered works too. how "drop": only kept tokens stay (patches, coords and
+    any `masked` flags filtered, token order kept). how "mask": every token stays and
+    `masked` = not kept (OR-ed with flags already there). Both write meta["drop"] =
+    {"mode", "rate", "kept", "total"} (kept: tokens kept or visible; total: tokens before).
+    """
+    if how not in ("drop", "mask"):
+        raise ValueError(f"how must be 'drop' or 'mask' (got {how!r})")
+    gh, gw = ps.grid
+    keep = np.asarray(decision.keep, dtype=bool)
+    if keep.shape != (gh * gw,):
+        raise ValueError(
+            f"PatchSet {ps.key!r}: drop decision has {keep.size} places, grid {gh}x{gw} has {gh * gw}"
+        )
+    token_keep = keep[ps.coords[:, 0].astype(np.int64) * gw + ps.coords[:, 1]]
+    meta = {**ps.meta, "drop": {"mode": decision.mode, "rate": float(decision.rate),
+                                "kept": int(np.count_nonzero(token_keep)), "total": ps.num_tokens}}
+    if how == "mask":
+        masked = ~token_keep if ps.masked is None else (ps.masked | ~token_keep)
+        return PatchSet(ps.patches, ps.coords, ps.grid, ps.key, ps.label, meta, masked)
+    if token_keep.all():
+        return PatchSet(ps.patches, ps.coords, ps.grid, ps.key, ps.label, meta, ps.masked)
+    masked = None if ps.masked is None else ps.masked[token_keep]
+    return PatchSet(ps.patches[token_keep], ps.coords[token_keep], ps.grid, ps.key, ps.label, meta, masked)

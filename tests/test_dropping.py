@@ -1,0 +1,458 @@
+"""Tests for patchloom.dropping: every mode on small, long and square grids, min_keep, the rate
+settings, determinism, and applying a decision (drop and mask).
+
+Expected values are worked out here independently of the module: target counts in exact
+fractions, the grid stride by brute force over k, the largest allowed block by listing every
+rectangle, lattices and stripes by their row/column structure.
+"""
+
+from __future__ import annotations
+
+from fractions import Fraction
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from patchloom.dropping import (
+    DropDecision,
+    apply_drop,
+    decide_drop,
+    drop_block,
+    drop_content,
+    drop_grid,
+    drop_random,
+    drop_stripes,
+    target_rate,
+)
+from patchloom.patches import PatchSet, grid_coords, patchify
+from patchloom.recipe import DropConfig
+
+GRIDS = [(1, 1), (1, 50), (3, 3), (14, 14), (7, 40)]
+RATES = [0.0, 0.3, 0.75, 1.0]
+MODES = ["random", "block", "grid", "stripes", "content"]
+ASPECT = (0.3, 1 / 0.3)
+
+
+def expected_drops(rate: float, n: int) -> int:
+    """rate * n rounded half up, in exact decimal arithmetic."""
+    return int(Fraction(str(rate)) * n + Fraction(1, 2))
+
+
+def noise_patches(grid: tuple[int, int], seed: int = 0, d: int = 12) -> np.ndarray:
+    return np.random.default_rng(seed).integers(0, 256, (grid[0] * grid[1], d), dtype=np.uint8)
+
+
+def largest_allowed_block(grid: tuple[int, int], aspect: tuple[float, float]) -> int:
+    lo, hi = aspect
+    areas = [h * w for h in range(1, grid[0] + 1) for w in range(1, grid[1] + 1) if lo <= h / w <= hi]
+    return max(areas, default=0)
+
+
+def decide(mode: str, grid: tuple[int, int], seed: int = 0, **kw) -> DropDecision:
+    cfg = DropConfig(mode=mode, **kw)
+    return decide_drop(cfg, grid, noise_patches(grid), np.random.default_rng(seed))
+
+
+# --- target_rate ----------------------------------------------------------------------------
+
+
+def test_target_rate_fixed_rate_ignores_token_count() -> None:
+    cfg = DropConfig(mode="random", rate=0.3)
+    assert [target_rate(cfg, n, np.random.default_rng(0)) for n in (1, 196, 4096)] == [0.3, 0.3, 0.3]
+
+
+def test_target_rate_max_keep() -> None:
+    cfg = DropConfig(mode="random", max_keep=49)
+    rng = np.random.default_rng(0)
+    assert target_rate(cfg, 196, rng) == pytest.approx(0.75)
+    assert target_rate(cfg, 98, rng) == pytest.approx(0.5)
+    assert target_rate(cfg, 49, rng) == 0.0
+    assert target_rate(cfg, 10, rng) == 0.0  # fewer tokens than max_keep: nothing dropped
+    # through decide_drop, exactly max_keep tokens stay
+    assert decide("random", (14, 14), max_keep=49).kept == 49
+    assert decide("random", (5, 6), max_keep=49).kept == 30
+
+
+def test_target_rate_curve_interpolates_and_is_flat_beyond_the_ends() -> None:
+    cfg = DropConfig(mode="random", rate_curve=[[64, 0.0], [256, 0.5], [1024, 0.75]])
+    rng = np.random.default_rng(0)
+    expected = {1: 0.0, 16: 0.0, 64: 0.0, 160: 0.25, 256: 0.5, 640: 0.625, 1024: 0.75, 5000: 0.75}
+    for n, rate in expected.items():
+        assert target_rate(cfg, n, rng) == pytest.approx(rate), n
+    one = DropConfig(mode="random", rate_curve=[[100, 0.4]])
+    assert [target_rate(one, n, rng) for n in (1, 100, 10_000)] == pytest.approx([0.4, 0.4, 0.4])
+
+
+def test_target_rate_beta_draws_per_image_and_grid_stride_is_nominal() -> None:
+    cfg = DropConfig(mode="random", beta=(2.0, 5.0))
+    rates = [target_rate(cfg, 196, np.random.default_rng(s)) for s in range(20)]
+    assert all(0.0 < r < 1.0 for r in rates) and len(set(rates)) == 20
+    assert target_rate(DropConfig(mode="grid", stride=2), 196, np.random.default_rng(0)) == 0.75
+
+
+# --- random ---------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("grid", GRIDS)
+@pytest.mark.parametrize("rate", RATES)
+@pytest.mark.parametrize("min_keep", [0, 1, 7])
+def test_random_drops_exactly_the_target_count(grid, rate, min_keep) -> None:
+    n = grid[0] * grid[1]
+    want = min(expected_drops(rate, n), n - min(min_keep, n))
+    for seed in range(3):
+        keep = drop_random(n, rate, np.random.default_rng(seed), min_keep=min_keep)
+        assert keep.shape == (n,) and keep.dtype == bool
+        assert n - int(keep.sum()) == want
+
+
+def test_random_rounds_half_up_and_refuses_bad_rates() -> None:
+    assert int((~drop_random(14, 0.75, np.random.default_rng(0))).sum()) == 11  # 10.5 -> 11
+    assert int((~drop_random(3, 0.5, np.random.default_rng(0))).sum()) == 2  # 1.5 -> 2
+    for bad in (-0.1, 1.5, float("nan")):
+        with pytest.raises(ValueError, match="0..1"):
+            drop_random(10, bad, np.random.default_rng(0))
+
+
+# --- grid -----------------------------------------------------------------------------------
+
+
+def brute_stride(grid: tuple[int, int], rate: float) -> int:
+    share = 1 - rate
+    best = None
+    for k in range(1, max(grid) + 1):
+        if best is None or abs(1 / k**2 - share) < abs(1 / best**2 - share):
+            best = k
+    return best
+
+
+def lattice(keep: np.ndarray, grid: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
+    """(kept rows, kept cols), after checking the kept set is exactly their product."""
+    k2 = keep.reshape(grid)
+    rows, cols = k2.any(axis=1), k2.any(axis=0)
+    np.testing.assert_array_equal(k2, np.outer(rows, cols))
+    return np.flatnonzero(rows), np.flatnonzero(cols)
+
+
+def assert_strided(idx: np.ndarray, size: int, k: int) -> None:
+    assert idx.size >= 1
+    assert idx[0] < min(k, size)
+    np.testing.assert_array_equal(idx, np.arange(idx[0], size, k))
+
+
+@pytest.mark.parametrize("grid", GRIDS)
+@pytest.mark.parametrize("rate", RATES)
+def test_grid_keeps_a_strided_lattice(grid, rate) -> None:
+    k = brute_stride(grid, rate)
+    for seed in range(4):
+        keep = drop_grid(grid, rate, np.random.default_rng(seed))
+        rows, cols = lattice(keep, grid)
+        assert_strided(rows, grid[0], k)
+        assert_strided(cols, grid[1], k)
+
+
+def test_grid_stride_setting_and_random_offsets() -> None:
+    offsets = set()
+    for seed in range(30):
+        rows, cols = lattice(drop_grid((14, 14), None, np.random.default_rng(seed), stride=3), (14, 14))
+        assert_strided(rows, 14, 3)
+        assert_strided(cols, 14, 3)
+        offsets.add((int(rows[0]), int(cols[0])))
+    assert len(offsets) == 9  # every (row, col) offset pair in 0..2 turns up
+    # rate 0.75 -> stride 2 on a 14x14 grid: a quarter kept
+    assert int(drop_grid((14, 14), 0.75, np.random.default_rng(0)).sum()) == 49
+
+
+def test_grid_lowers_stride_for_min_keep() -> None:
+    keep = drop_grid((14, 14), 1.0, np.random.default_rng(0))
+    assert int(keep.sum()) == 1  # the lattice always keeps one token
+    keep = drop_grid((14, 14), 1.0, np.random.default_rng(0), min_keep=10)
+    rows, cols = lattice(keep, (14, 14))
+    assert rows.size * cols.size >= 10
+    k = int(rows[1] - rows[0])
+    assert_strided(rows, 14, k)
+    assert_strided(cols, 14, k)
+
+
+# --- stripes --------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("grid", GRIDS)
+@pytest.mark.parametrize("rate", RATES)
+@pytest.mark.parametrize("min_keep", [0, 1])
+def test_stripes_drop_whole_rows_or_columns(grid, rate, min_keep) -> None:
+    n = grid[0] * grid[1]
+    target = expected_drops(rate, n)
+    for seed in range(4):
+        keep = drop_stripes(grid, rate, np.random.default_rng(seed), min_keep=min_keep)
+        rows, cols = lattice(keep, grid)  # kept = product of kept rows and cols: whole stripes only
+        kept_r, kept_c = rows.size, cols.size
+        dropped = n - int(keep.sum())
+        assert int(keep.sum()) >= min(min_keep, n)
+        if dropped >= target:
+            assert dropped - target < max(grid)  # overshoot: less than one stripe
+        else:  # stopped short: any further stripe would leave fewer than min_keep tokens
+            assert (kept_r - 1) * kept_c < min_keep and kept_r * (kept_c - 1) < min_keep
+
+
+def test_stripes_use_both_orientations_and_reach_the_target() -> None:
+    row_cuts = col_cuts = 0
+    for seed in range(40):
+        keep = drop_stripes((14, 14), 0.3, np.random.default_rng(seed))
+        rows, cols = lattice(keep, (14, 14))
+        row_cuts += 14 - rows.size
+        col_cuts += 14 - cols.size
+        dropped = 196 - int(keep.sum())
+        assert 59 <= dropped < 59 + 14
+    assert row_cuts > 40 and col_cuts > 40
+    assert int(drop_stripes((14, 14), 1.0, np.random.default_rng(0), min_keep=1).sum()) == 1
+
+
+# --- block ----------------------------------------------------------------------------------
+
+
+def check_blocks(grid, rate, keep, rects, *, min_area=16, aspect=ASPECT, min_keep=0) -> None:
+    gh, gw = grid
+    n = gh * gw
+    a_min = min(min_area, largest_allowed_block(grid, aspect))
+    union = np.zeros(grid, dtype=bool)
+    for top, left, h, w in rects:
+        assert 0 <= top and 0 <= left and top + h <= gh and left + w <= gw, (top, left, h, w)
+        assert h * w >= a_min, (h, w, a_min)
+        assert aspect[0] <= h / w <= aspect[1], (h, w)
+        union[top : top + h, left : left + w] = True
+    np.testing.assert_array_equal(union.reshape(-1), ~keep)
+    target = min(expected_drops(rate, n), n - min(min_keep, n))
+    dropped = n - int(keep.sum())
+    assert abs(dropped - target) < max([a_min] + [h * w for *_, h, w in rects]), (dropped, target)
+    if dropped > target:  # stated overshoot rule: under half of the last block
+        assert 2 * (dropped - target) < rects[-1][2] * rects[-1][3], (dropped, target, rects[-1])
+    assert int(keep.sum()) >= min(min_keep, n)
+
+
+@pytest.mark.parametrize("grid", GRIDS)
+@pytest.mark.parametrize("rate", RATES)
+@pytest.mark.parametrize("min_keep", [0, 1])
+def test_block_rectangles_are_valid_and_cover_the_dropped_set(grid, rate, min_keep) -> None:
+    for seed in range(6):
+        keep, rects = drop_block(grid, rate, np.random.default_rng(seed), min_keep=min_keep)
+        check_blocks(grid, rate, keep, rects, min_keep=min_keep)
+
+
+def test_block_tiny_grids_clamp_min_area() -> None:
+    # one row, aspect >= 0.3: the biggest allowed block is 1x3, so min_area 16 becomes 3
+    keep, rects = drop_block((1, 50), 0.5, np.random.default_rng(0))
+    assert rects and all((h, w) == (1, 3) for *_, h, w in rects)
+    check_blocks((1, 50), 0.5, keep, rects)
+    # 3x3: only the whole grid is a block of the clamped area 9
+    keep, rects = drop_block((3, 3), 1.0, np.random.default_rng(0))
+    assert rects == [(0, 0, 3, 3)] and not keep.any()
+    # no allowed block fits at all: nothing dropped
+    keep, rects = drop_block((1, 50), 0.5, np.random.default_rng(0), aspect=(2.0, 3.0))
+    assert rects == [] and keep.all()
+
+
+def test_block_options_shape_the_blocks() -> None:
+    for seed in range(5):
+        keep, rects = drop_block((14, 14), 0.5, np.random.default_rng(seed), min_area=4, aspect=(1.0, 1.0))
+        assert rects and all(h == w for *_, h, w in rects)
+        check_blocks((14, 14), 0.5, keep, rects, min_area=4, aspect=(1.0, 1.0))
+    for seed in range(5):
+        keep, rects = drop_block((14, 14), 0.5, np.random.default_rng(seed), min_area=30)
+        assert all(h * w >= 30 for *_, h, w in rects)
+
+
+@settings(max_examples=120, deadline=None, derandomize=True)
+@given(gh=st.integers(1, 24), gw=st.integers(1, 24), rate=st.floats(0, 1), min_area=st.integers(1, 40),
+       min_keep=st.integers(0, 30), seed=st.integers(0, 2**32 - 1))
+def test_block_property(gh, gw, rate, min_area, min_keep, seed) -> None:
+    keep, rects = drop_block((gh, gw), rate, np.random.default_rng(seed), min_area=min_area, min_keep=min_keep)
+    check_blocks((gh, gw), rate, keep, rects, min_area=min_area, min_keep=min_keep)
+
+
+# --- content --------------------------------------------------------------------------------
+
+
+def half_flat_image(grid: tuple[int, int], patch: int, *, split: str, seed: int = 0) -> tuple[np.ndarray, np.ndarray]:
+    """Image with one half flat white and the other uniform noise; returns (patches, flat flags)."""
+    gh, gw = grid
+    img = np.random.default_rng(seed).integers(0, 256, (gh * patch, gw * patch, 3), dtype=np.uint8)
+    flat = np.zeros(grid, dtype=bool)
+    if split == "left":
+        flat[:, : gw // 2] = True
+    else:
+        flat[: gh // 2, :] = True
+    img[np.repeat(np.repeat(flat, patch, axis=0), patch, axis=1)] = 255
+    return patchify(img, patch), flat.reshape(-1)
+
+
+@pytest.mark.parametrize("split", ["left", "top"])
+def test_content_drops_the_flat_half_first(split) -> None:
+    patches, flat = half_flat_image((14, 14), 8, split=split)
+    for seed in range(5):
+        keep = drop_content(patches, 0.5, np.random.default_rng(seed))
+        dropped = ~keep
+        assert int(dropped.sum()) == 98
+        assert flat[dropped].mean() >= 0.95
+        keep = drop_content(patches, 0.25, np.random.default_rng(seed))
+        assert flat[~keep].all()  # fewer than the flat half: only flat ones go
+
+
+def test_content_float_patches_and_min_keep() -> None:
+    patches, flat = half_flat_image((6, 10), 4, split="left")
+    as_float = (patches.astype(np.float32) / 255 - 0.5) / 0.5
+    keep = drop_content(as_float, 0.5, np.random.default_rng(0))
+    assert flat[~keep].mean() >= 0.95
+    keep = drop_content(as_float, 1.0, np.random.default_rng(0), min_keep=4)
+    assert int(keep.sum()) == 4
+
+
+def test_content_noise_makes_it_random_and_zero_noise_is_the_exact_order() -> None:
+    rng = np.random.default_rng(3)
+    spread = np.linspace(1, 60, 100)  # patch i has standard deviation spread[i] (all different)
+    patches = rng.standard_normal((100, 48)) * spread[:, None]
+    by_variance = np.argsort(patches.var(axis=1))
+    for seed in range(4):
+        keep = drop_content(patches, 0.3, np.random.default_rng(seed), noise=0.0)
+        assert set(np.flatnonzero(~keep)) == set(by_variance[:30])
+    noisy = {tuple(drop_content(patches, 0.3, np.random.default_rng(s), noise=0.5)) for s in range(6)}
+    assert len(noisy) > 1
+    # a flat image (all scores tie): the dropped tokens are random, not the first ones
+    flat = np.full((50, 12), 7, dtype=np.uint8)
+    picks = {tuple(np.flatnonzero(~drop_content(flat, 0.2, np.random.default_rng(s)))) for s in range(6)}
+    assert len(picks) > 1
+
+
+# --- all modes through decide_drop ----------------------------------------------------------
+
+
+@pytest.mark.parametrize("mode", MODES)
+@pytest.mark.parametrize("grid", GRIDS)
+def test_rate_zero_keeps_everything(mode, grid) -> None:
+    d = decide(mode, grid, rate=0.0)
+    assert d.keep.shape == (grid[0] * grid[1],) and d.keep.all() and d.blocks == ()
+    assert d.rate == 0.0 and d.mode == mode
+
+
+@pytest.mark.parametrize("mode", MODES)
+@pytest.mark.parametrize("grid", GRIDS)
+@pytest.mark.parametrize("min_keep", [0, 1, 5, 10_000])
+def test_min_keep_is_honoured_at_rate_one(mode, grid, min_keep) -> None:
+    n = grid[0] * grid[1]
+    d = decide(mode, grid, rate=1.0, min_keep=min_keep)
+    floor = min(min_keep, n)
+    assert d.kept >= floor
+    if mode in ("random", "content"):
+        assert d.kept == floor
+    if mode == "grid":
+        assert d.kept >= 1  # a lattice keeps at least one token
+    elif min_keep == 0 and mode in ("random", "content", "stripes"):
+        assert d.kept == 0
+
+
+@pytest.mark.parametrize("mode", MODES)
+def test_same_seed_same_decision_other_seed_other_decision(mode) -> None:
+    grid = (14, 14)
+    a, b = decide(mode, grid, seed=11, rate=0.75), decide(mode, grid, seed=11, rate=0.75)
+    np.testing.assert_array_equal(a.keep, b.keep)
+    assert (a.rate, a.blocks, a.mode) == (b.rate, b.blocks, b.mode)
+    others = {decide(mode, grid, seed=s, rate=0.75).keep.tobytes() for s in range(12, 18)}
+    assert len(others | {a.keep.tobytes()}) > 1
+    rates = {decide(mode, grid, seed=s, beta=(2.0, 2.0)).rate for s in range(5)}
+    assert len(rates) == 5
+
+
+def test_decide_drop_mode_none_and_blocks_recorded() -> None:
+    d = decide_drop(DropConfig(), (3, 4), None, np.random.default_rng(0))
+    assert d.keep.all() and d.keep.shape == (12,) and d.rate == 0.0 and d.mode == "none"
+    d = decide("block", (14, 14), rate=0.5)
+    assert d.blocks and isinstance(d.blocks, tuple)
+    union = np.zeros((14, 14), dtype=bool)
+    for top, left, h, w in d.blocks:
+        union[top : top + h, left : left + w] = True
+    np.testing.assert_array_equal(union.reshape(-1), ~d.keep)
+
+
+def test_decide_drop_content_follows_coords_of_reordered_tokens() -> None:
+    patches, _ = half_flat_image((6, 8), 4, split="left")
+    cfg = DropConfig(mode="content", rate=0.4)
+    raster = decide_drop(cfg, (6, 8), patches, np.random.default_rng(5))
+    order = np.random.default_rng(9).permutation(48)
+    shuffled = decide_drop(cfg, (6, 8), patches[order], np.random.default_rng(5), coords=grid_coords(6, 8)[order])
+    np.testing.assert_array_equal(raster.keep, shuffled.keep)
+    with pytest.raises(ValueError, match="content mode needs all"):
+        decide_drop(cfg, (6, 8), patches[:40], np.random.default_rng(5))
+    with pytest.raises(ValueError, match="once"):
+        decide_drop(cfg, (6, 8), patches, np.random.default_rng(5), coords=np.zeros((48, 2), dtype=np.int32))
+
+
+# --- apply_drop -----------------------------------------------------------------------------
+
+
+def image_patchset(grid=(5, 7), patch=4, key="img-1") -> PatchSet:
+    img = np.random.default_rng(1).integers(0, 256, (grid[0] * patch, grid[1] * patch, 3), dtype=np.uint8)
+    return PatchSet(patchify(img, patch), grid_coords(*grid), grid, key, 3, {"shard": "s.tar"})
+
+
+def test_apply_drop_keeps_raster_coords_and_matching_patches() -> None:
+    ps = image_patchset()
+    before = ps.patches.copy()
+    d = decide_drop(DropConfig(mode="random", rate=0.4), ps.grid, ps.patches, np.random.default_rng(2))
+    out = apply_drop(ps, d, "drop")
+    kept = np.flatnonzero(d.keep)
+    np.testing.assert_array_equal(out.coords, np.stack(np.divmod(kept, 7), axis=1))  # raster order
+    np.testing.assert_array_equal(out.patches, before[kept])
+    assert out.num_tokens == 35 - 14 and out.grid == (5, 7) and out.key == "img-1" and out.label == 3
+    assert out.meta["drop"] == {"mode": "random", "rate": 0.4, "kept": 21, "total": 35}
+    assert out.meta["shard"] == "s.tar" and out.masked is None
+    assert ps.num_tokens == 35 and "drop" not in ps.meta  # the input is untouched
+
+
+def test_apply_drop_mask_keeps_every_token() -> None:
+    ps = image_patchset()
+    d = decide_drop(DropConfig(mode="block", rate=0.5, block_min_area=4), ps.grid, None, np.random.default_rng(0))
+    out = apply_drop(ps, d, "mask")
+    np.testing.assert_array_equal(out.patches, ps.patches)
+    np.testing.assert_array_equal(out.coords, ps.coords)
+    np.testing.assert_array_equal(out.masked, ~d.keep)
+    assert out.masked.dtype == bool and out.masked.any()
+    assert out.meta["drop"]["kept"] == int(d.keep.sum()) and out.meta["drop"]["total"] == 35
+
+
+def test_apply_drop_matches_tokens_by_coords_when_reordered() -> None:
+    ps = image_patchset()
+    order = np.random.default_rng(4).permutation(35)
+    shuffled = PatchSet(ps.patches[order], ps.coords[order], ps.grid, ps.key)
+    d = decide_drop(DropConfig(mode="stripes", rate=0.3), ps.grid, None, np.random.default_rng(1))
+    out = apply_drop(shuffled, d, "drop")
+    flat = out.coords[:, 0] * 7 + out.coords[:, 1]
+    assert d.keep[flat].all() and out.num_tokens == d.kept
+    np.testing.assert_array_equal(out.patches, ps.patches[flat])  # each patch still beside its coords
+    np.testing.assert_array_equal(flat, [i for i in order if d.keep[i]])  # token order kept
+
+
+def test_apply_drop_refuses_mismatches() -> None:
+    ps = image_patchset()
+    d = decide_drop(DropConfig(mode="random", rate=0.5), (5, 6), None, np.random.default_rng(0))
+    with pytest.raises(ValueError, match="img-1"):
+        apply_drop(ps, d, "drop")
+    with pytest.raises(ValueError, match="how"):
+        apply_drop(ps, DropDecision(np.ones(35, dtype=bool), 0.0), "hide")
+
+
+
+@pytest.mark.parametrize("how", ["drop", "mask"])
+def test_recipe_drop_section_through_image_to_patches(how) -> None:
+    from patchloom import Recipe, image_to_patches
+
+    img = np.random.default_rng(0).integers(0, 256, (224, 224, 3), dtype=np.uint8)
+    recipe = Recipe.from_dict({"sizing": {"max_tokens": 196}, "drop": {"mode": "random", "rate": 0.5, "apply": how}})
+    ps = image_to_patches(img, recipe, key="a")
+    again = image_to_patches(img, recipe, key="a")
+    np.testing.assert_array_equal(ps.coords, again.coords)
+    assert ps.meta["drop"] == {"mode": "random", "rate": 0.5, "kept": 98, "total": 196}
+    if how == "drop":
+        assert ps.num_tokens == 98 and ps.masked is None
+    else:
+        assert ps.num_tokens == 196 and int(ps.masked.sum()) == 98
