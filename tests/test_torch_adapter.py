@@ -67,3 +67,32 @@ def test_numpy_batches_when_asked(demo_dir):
     ds = PackedDataset(Recipe.from_dict(RECIPE), demo_shard_pattern(demo_dir), as_tensors=False)
     first = next(iter(ds))
     assert first.patches.dtype == np.uint8 and first.attention_mask().shape == (2, 512, 512)
+
+
+def test_augmented_masked_recipe_is_worker_count_independent(demo_dir):
+    recipe = Recipe.from_dict({
+        **RECIPE,
+        "crop": {"mode": "random"},
+        "augment": [{"name": "HorizontalFlip", "p": 0.5}, {"name": "ColorJitter", "p": 0.8}],
+        "drop": {"mode": "block", "apply": "mask", "rate": 0.4},
+        "patch_ops": [{"name": "jitter"}],
+    })
+    ds = PackedDataset(recipe, demo_shard_pattern(demo_dir))
+
+    def masks(loader):
+        out = {}
+        for batch in loader:
+            seg = batch["segment_ids"].numpy()
+            for r, keys in enumerate(batch["keys"]):
+                for j, key in enumerate(keys):
+                    sel = seg[r] == j + 1
+                    out[key] = (batch["patches"][r].numpy()[sel], batch["masked"][r].numpy()[sel])
+        return out
+
+    a = masks(DataLoader(ds, batch_size=None, num_workers=0))
+    b = masks(DataLoader(ds, batch_size=None, num_workers=2))
+    assert a.keys() == b.keys()
+    for key in a:
+        np.testing.assert_array_equal(a[key][0], b[key][0])
+        np.testing.assert_array_equal(a[key][1], b[key][1])
+    assert any(m.any() for _, m in a.values())
