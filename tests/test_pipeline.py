@@ -228,3 +228,15 @@ def test_core_runs_without_torch(shards):
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip() == "48"
+
+
+def test_shell_shards_need_the_callers_permission(tmp_path, shards):
+    with pytest.raises(SourceError, match="allow_shell"):
+        Pipeline(recipe(), f"pipe:cat {shards[0]}")
+    # A recipe cannot grant it to itself: there is no such recipe key.
+    from patchloom import RecipeError
+
+    with pytest.raises(RecipeError, match="source.allow_shell: unknown key"):
+        Recipe.from_dict({"source": {"allow_shell": True}})
+    pipe = Pipeline(recipe(), f"pipe:cat {shards[0]}", allow_shell=True)
+    assert sum(b.num_images for b in pipe) == 12

@@ -114,7 +114,7 @@ class SquareBaseline:
         r = self.recipe
         order = shard_order(self.shards, seed=r.seed, epoch=0, shuffle=r.source.shuffle_shards)
         tasks = [ShardTask(url) for url in order]
-        for rec in read_tasks(tasks, allow_shell=r.source.allow_shell):
+        for rec in read_tasks(tasks, allow_shell=False):
             data = next((rec.members[ext] for ext in r.source.image_keys if ext in rec.members), None)
             if data is None:
                 self.skipped += 1
@@ -241,7 +241,7 @@ def _time_pipeline(recipe: Recipe, urls: list[str], max_images: int | None, bar:
 def _warm_cache(recipe: Recipe, urls: list[str]) -> None:
     """Read every record once, untimed, so neither side pays for a cold file cache or for the
     one-time imports of the first shard read."""
-    for _ in read_tasks([ShardTask(u) for u in urls], allow_shell=recipe.source.allow_shell):
+    for _ in read_tasks([ShardTask(u) for u in urls], allow_shell=False):
         pass
 
 
@@ -279,7 +279,7 @@ def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_imag
     if max_images is not None and max_images < 1:
         raise ValueError(f"max_images must be >= 1 (got {max_images})")
     src = recipe.source
-    urls = expand_shards(shards if shards is not None else src.shards, allow_shell=src.allow_shell)
+    urls = expand_shards(shards if shards is not None else src.shards, allow_shell=False)
     _warm_cache(recipe, urls)
     runs: dict[str, list[RunResult]] = {side: [] for side in SIDES}
     timers = {"baseline": _time_baseline, "pipeline": _time_pipeline}

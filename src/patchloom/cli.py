@@ -29,8 +29,8 @@ DEMO_RECIPE = {
 
 
 def _stream(recipe: Recipe, *, shards, epoch: int, rank: int, world_size: int, max_batches: int | None,
-            progress: bool, title: str) -> tuple[RunStats, dict]:
-    pipe = Pipeline(recipe, shards=shards, rank=rank, world_size=world_size, epoch=epoch)
+            progress: bool, title: str, allow_shell: bool = False) -> tuple[RunStats, dict]:
+    pipe = Pipeline(recipe, shards=shards, rank=rank, world_size=world_size, epoch=epoch, allow_shell=allow_shell)
     stats = RunStats()
     bar = tqdm(desc="packing", unit=" img", disable=not progress, file=sys.stderr, dynamic_ncols=True)
     try:
@@ -64,7 +64,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     recipe = Recipe.from_file(args.recipe)
     stats, ledger = _stream(
         recipe, shards=args.shards, epoch=args.epoch, rank=args.rank, world_size=args.world_size,
-        max_batches=args.max_batches, progress=not args.no_progress,
+        max_batches=args.max_batches, progress=not args.no_progress, allow_shell=args.allow_shell,
         title=f"patchloom run {args.recipe}  (recipe {recipe.fingerprint()[:12]})",
     )
     if args.json:
@@ -131,6 +131,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--world-size", type=int, default=1)
     run.add_argument("--max-batches", type=int, help="stop after this many batches")
     run.add_argument("--json", metavar="FILE", help="also write the summary and ledger as JSON")
+    run.add_argument("--allow-shell", action="store_true",
+                     help="allow pipe: shard URLs, which run shell commands (only for shard lists you wrote)")
     run.add_argument("--no-progress", action="store_true", help="no progress bar")
     run.set_defaults(func=cmd_run)
 

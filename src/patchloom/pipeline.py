@@ -98,12 +98,14 @@ class Pipeline:
         *,
         worker: int = 0,
         num_workers: int = 1,
+        allow_shell: bool = False,
     ) -> None:
         if not isinstance(recipe, Recipe):
             raise TypeError(f"Pipeline needs a Recipe (got {type(recipe).__name__}); use Recipe.from_file(path)")
         self.recipe = recipe
         src = recipe.source
-        self.shards = expand_shards(shards if shards is not None else src.shards, allow_shell=src.allow_shell)
+        self.shards = expand_shards(shards if shards is not None else src.shards, allow_shell=allow_shell)
+        self.allow_shell = allow_shell
         self.rank, self.world_size = rank, world_size
         self.worker, self.num_workers = worker, num_workers
         self.epoch = epoch
@@ -131,7 +133,7 @@ class Pipeline:
             worker=self.worker, num_workers=self.num_workers, shuffle_shards=r.source.shuffle_shards,
         )
         on_error = self._shard_error if r.source.on_error == "skip" else None
-        for rec in read_tasks(tasks, allow_shell=r.source.allow_shell, on_shard_error=on_error):
+        for rec in read_tasks(tasks, allow_shell=self.allow_shell, on_shard_error=on_error):
             self.ledger.read += 1
             yield rec
 

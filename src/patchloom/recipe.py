@@ -36,7 +36,6 @@ class SourceConfig(_Section):
     shuffle_shards: bool = True
     shuffle_buffer: int = Field(default=0, ge=0)
     on_error: Literal["skip", "raise"] = "skip"
-    allow_shell: bool = False
 
 
 class DecodeConfig(_Section):

@@ -61,8 +61,8 @@ def expand_shards(spec: str | Sequence[str] | None, *, allow_shell: bool = False
             if not allow_shell:
                 raise SourceError(
                     f"shard spec {item!r} runs a shell command; this is refused by default because a "
-                    "recipe is data. Set source.allow_shell: true (or allow_shell=True) only for "
-                    "recipes you wrote yourself"
+                    "recipe is data. Pass allow_shell=True to Pipeline (or --allow-shell on the "
+                    "command line) only for shard lists you wrote yourself"
                 )
             out.extend(braceexpand.braceexpand(item))
             continue
@@ -113,11 +113,11 @@ def split_shards(shards: Sequence[str], *, slot: int, slots: int) -> list[ShardT
 def open_shard(url: str, *, allow_shell: bool = False):
     """A binary stream for a shard: local files directly, other URLs through webdataset's gopen."""
     if url.startswith(SHELL_PREFIXES) and not allow_shell:
-        raise SourceError(f"refusing shell-command shard {url!r}; set source.allow_shell: true to allow it")
+        raise SourceError(f"refusing shell-command shard {url!r}; pass allow_shell=True (--allow-shell) to allow it")
     if url.startswith(SHELL_PREFIXES):
         import subprocess
 
-        # The caller allowed shell commands explicitly (source.allow_shell).
+        # The caller allowed shell commands explicitly (allow_shell=True).
         proc = subprocess.Popen(url.removeprefix("pipe:"), shell=True, stdout=subprocess.PIPE)  # noqa: S602
         return proc.stdout
     if "://" not in url:

@@ -43,6 +43,7 @@ class PackedDataset(IterableDataset):
         world_size: int = 1,
         epoch: int = 0,
         as_tensors: bool = True,
+        allow_shell: bool = False,
     ) -> None:
         super().__init__()
         self.recipe = recipe
@@ -51,8 +52,9 @@ class PackedDataset(IterableDataset):
         # Shared memory, so set_epoch reaches persistent workers, which hold their own copy.
         self._epoch = torch.tensor([epoch], dtype=torch.int64).share_memory_()
         self.as_tensors = as_tensors
+        self.allow_shell = allow_shell
         # Validate the shard spec now, in the main process, so errors surface before workers start.
-        Pipeline(recipe, shards, rank, world_size, epoch)
+        Pipeline(recipe, shards, rank, world_size, epoch, allow_shell=allow_shell)
 
     def set_epoch(self, epoch: int) -> None:
         """Call before each epoch; with persistent_workers the workers see it on their next pass."""
@@ -68,7 +70,7 @@ class PackedDataset(IterableDataset):
         if info is not None:
             _worker_init()
         return Pipeline(self.recipe, self.shards, self.rank, self.world_size, self.epoch,
-                        worker=worker, num_workers=num_workers)
+                        worker=worker, num_workers=num_workers, allow_shell=self.allow_shell)
 
     def __iter__(self) -> Iterator[Any]:
         for batch in self.pipeline_for_this_worker():
