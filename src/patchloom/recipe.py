@@ -202,6 +202,25 @@ class PackingConfig(_Section):
     algorithm: Literal["first_fit", "best_fit", "in_order"] = "first_fit"
 
 
+class EpochConfig(_Section):
+    """How long one epoch is for each rank: one pass over its share (default), or an explicit
+    number of batches or samples. With `equalize`, a rank whose share runs out first tops up by
+    re-reading its own share (counted in the ledger), so every rank yields the same count and
+    distributed training never waits on a rank that ran dry."""
+
+    batches: int | None = Field(default=None, ge=1)
+    samples: int | None = Field(default=None, ge=1)
+    equalize: bool = False
+
+    @model_validator(mode="after")
+    def _one_unit(self) -> EpochConfig:
+        if self.batches is not None and self.samples is not None:
+            raise ValueError("give epoch.batches or epoch.samples, not both")
+        if self.equalize and self.batches is None and self.samples is None:
+            raise ValueError("equalize needs the epoch length: set epoch.batches (or epoch.samples) per rank")
+        return self
+
+
 class OutputConfig(_Section):
     """dtype of the patch array and the normalisation for float outputs."""
 
@@ -230,6 +249,7 @@ class Recipe(_Section):
     patch_ops: list[PatchOp] = Field(default_factory=list)
     drop: DropConfig = Field(default_factory=DropConfig)
     packing: PackingConfig = Field(default_factory=PackingConfig)
+    epoch: EpochConfig = Field(default_factory=EpochConfig)
     output: OutputConfig = Field(default_factory=OutputConfig)
 
     @field_validator("augment")
