@@ -96,3 +96,47 @@ def test_augmented_masked_recipe_is_worker_count_independent(demo_dir):
         np.testing.assert_array_equal(a[key][0], b[key][0])
         np.testing.assert_array_equal(a[key][1], b[key][1])
     assert any(m.any() for _, m in a.values())
+
+
+@pytest.mark.parametrize("num_workers", [0, 2])
+def test_loader_state_resumes_exactly(tmp_path, num_workers):
+    import json
+
+    import sys
+    sys.path.insert(0, str(__import__("pathlib").Path(__file__).parent))
+    from conftest import make_shards
+    from patchloom.adapters.torch import PackedLoader
+
+    paths = make_shards(tmp_path, 3, 14)  # 3 shards over 2 workers: one worker ends early
+    recipe = Recipe.from_dict({"source": {"shuffle_buffer": 5},
+                               "sizing": {"patch_size": 8, "max_tokens": 64, "mode": "sampled",
+                                          "sampled": {"range": [8, 64]}},
+                               "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 6, "buffer": 6}})
+
+    def loader():
+        return PackedLoader(PackedDataset(recipe, paths, epoch=1), num_workers=num_workers)
+
+    full = list(loader())
+    assert len(full) >= 6
+    for pos in (0, 1, 2, 3, len(full) - 1, len(full)):
+        first = loader()
+        it = iter(first)
+        for _ in range(pos):
+            next(it)
+        state = json.loads(json.dumps(first.state_dict()))
+        del it
+        again = loader()
+        again.load_state_dict(state)
+        rest = list(again)
+        assert [b["keys"] for b in rest] == [b["keys"] for b in full[pos:]], f"position {pos}"
+        for a, b in zip(rest, full[pos:]):
+            assert torch.equal(a["patches"], b["patches"]) and torch.equal(a["segment_ids"], b["segment_ids"])
+
+
+def test_loader_refuses_a_different_worker_count(tmp_path, demo_dir):
+    from patchloom.adapters.torch import PackedLoader
+
+    ds = PackedDataset(Recipe.from_dict(RECIPE), demo_shard_pattern(demo_dir))
+    state = PackedLoader(ds, num_workers=2).state_dict()
+    with pytest.raises(ValueError, match="same num_workers"):
+        PackedLoader(ds, num_workers=0).load_state_dict(state)

@@ -19,7 +19,7 @@ from .patches import PatchSet
 from .recipe import Recipe
 from .sample import SampleError, image_to_patches, process_record
 from .seeding import stream_rng
-from .sources import Record, ShuffleBuffer, expand_shards, read_tasks, reader_tasks
+from .sources import Record, ReaderCursor, ShuffleBuffer, expand_shards, fetch_records, reader_tasks
 
 __all__ = ["Ledger", "Pipeline", "SampleError", "Skip", "image_to_patches"]
 
@@ -42,6 +42,7 @@ class Ledger:
     emitted: int = 0
     skipped: list[Skip] = field(default_factory=list)
     shard_errors: list[Skip] = field(default_factory=list)
+    repeated: int = 0  # reads in top-up passes of an equalised epoch (also counted in `read`)
 
     @property
     def in_buffer(self) -> int:
@@ -69,7 +70,21 @@ class Ledger:
             "skip_reasons": self.reasons(),
             "skip_examples": self.examples(),
             "shard_errors": [s.shard + ": " + s.reason for s in self.shard_errors],
+            "repeated": self.repeated,
         }
+
+    def state_dict(self) -> dict[str, Any]:
+        """Everything, as JSON-able data (for resume)."""
+        return {
+            "read": self.read, "emitted": self.emitted, "repeated": self.repeated,
+            "skipped": [[s.shard, s.key, s.stage, s.reason] for s in self.skipped],
+            "shard_errors": [[s.shard, s.key, s.stage, s.reason] for s in self.shard_errors],
+        }
+
+    @classmethod
+    def from_state(cls, state: dict[str, Any]) -> Ledger:
+        return cls(read=int(state["read"]), emitted=int(state["emitted"]), repeated=int(state["repeated"]),
+                   skipped=[Skip(*s) for s in state["skipped"]], shard_errors=[Skip(*s) for s in state["shard_errors"]])
 
 
 def _gist(reason: str) -> str:
@@ -81,11 +96,23 @@ def _gist(reason: str) -> str:
     return text.strip()[:80]
 
 
+STATE_VERSION = 1
+
+
+def reader_share(total: int | None, worker: int, num_workers: int) -> int | None:
+    """A rank-level count split over its DataLoader workers (the first ones take the remainder)."""
+    if total is None:
+        return None
+    return total // num_workers + (1 if worker < total % num_workers else 0)
+
+
 class Pipeline:
     """Iterable of PackedBatch for one reader (rank, worker) over one epoch of a recipe's shards.
 
-    `shards` overrides the recipe's. Call `set_epoch(e)` between epochs. `state_dict()` /
-    `load_state_dict()` resume mid-epoch with the identical continuation.
+    `shards` overrides the recipe's. Call `set_epoch(e)` between epochs. `state_dict()` taken
+    between batches, then `load_state_dict()` on a new Pipeline, continues with exactly the batches
+    the uninterrupted run would have produced. Shell-command shard URLs (`pipe:`) need
+    allow_shell=True from the caller; a recipe cannot allow them for itself.
     """
 
     def __init__(
@@ -103,6 +130,7 @@ class Pipeline:
         if not isinstance(recipe, Recipe):
             raise TypeError(f"Pipeline needs a Recipe (got {type(recipe).__name__}); use Recipe.from_file(path)")
         self.recipe = recipe
+        self._fingerprint = recipe.fingerprint()
         src = recipe.source
         self.shards = expand_shards(shards if shards is not None else src.shards, allow_shell=allow_shell)
         self.allow_shell = allow_shell
@@ -111,7 +139,8 @@ class Pipeline:
         self.epoch = epoch
         self.ledger = Ledger()
         self._batches = 0
-        self._skip_batches = 0
+        self._resume: dict[str, Any] | None = None
+        self._cursor: ReaderCursor | None = None
         self._packer: Packer | None = None
         self._shuffle: ShuffleBuffer | None = None
 
@@ -126,26 +155,64 @@ class Pipeline:
         pending = len(self._packer.pending) if self._packer else 0
         return held + pending
 
-    def _records(self) -> Iterator[Record]:
-        r = self.recipe
-        tasks = reader_tasks(
-            self.shards, seed=r.seed, epoch=self.epoch, rank=self.rank, world_size=self.world_size,
-            worker=self.worker, num_workers=self.num_workers, shuffle_shards=r.source.shuffle_shards,
-        )
-        on_error = self._shard_error if r.source.on_error == "skip" else None
-        for rec in read_tasks(tasks, allow_shell=self.allow_shell, on_shard_error=on_error):
-            self.ledger.read += 1
-            yield rec
+    @property
+    def batch_target(self) -> int | None:
+        """Batches this reader yields in an epoch when the recipe fixes the length, else None."""
+        return reader_share(self.recipe.epoch.batches, self.worker, self.num_workers)
 
     def _shard_error(self, url: str, exc: Exception) -> None:
         self.ledger.shard_errors.append(Skip(url, "", "read", f"{type(exc).__name__}: {exc}"))
 
-    def samples(self) -> Iterator[PatchSet]:
-        """The PatchSets of this reader's epoch, before packing (bad samples skipped or raised)."""
+    def _setup(self) -> None:
+        """Fresh reader, shuffle buffer and packer for this epoch, restored from a saved state if any."""
         r = self.recipe
+        state, self._resume = self._resume, None
+        tasks = reader_tasks(
+            self.shards, seed=r.seed, epoch=self.epoch, rank=self.rank, world_size=self.world_size,
+            worker=self.worker, num_workers=self.num_workers, shuffle_shards=r.source.shuffle_shards,
+        )
+        self._cursor = ReaderCursor(
+            tasks, allow_shell=self.allow_shell,
+            on_shard_error=self._shard_error if r.source.on_error == "skip" else None,
+            cycle=r.epoch.equalize, limit=reader_share(r.epoch.samples, self.worker, self.num_workers),
+        )
         rng = stream_rng(r.seed, self.epoch, "sample-shuffle", self.rank, self.world_size, self.worker,
                          self.num_workers)
         self._shuffle = ShuffleBuffer(r.source.shuffle_buffer, rng)
+        p = r.packing
+        self._packer = Packer(seq_len=p.seq_len, rows=p.rows, max_images_per_row=p.max_images_per_row,
+                              buffer=p.buffer, algorithm=p.algorithm)
+        self.ledger = Ledger()
+        self._batches = 0
+        if state is None:
+            return
+        self._cursor.load_state_dict(state["reader"])
+        rng.bit_generator.state = state["shuffle_rng"]
+        held = [tuple(ref) for ref in state["shuffle_held"]]
+        pending = [tuple(ref) for ref in state["pending"]]
+        records = fetch_records(held + pending, allow_shell=self.allow_shell)
+        self._shuffle.held = records[: len(held)]
+        self._packer.pending = [process_record(rec, r, self.epoch) for rec in records[len(held):]]
+        self.ledger = Ledger.from_state(state["ledger"])
+        self._batches = int(state["batches"])
+
+    def _records(self) -> Iterator[Record]:
+        cursor = self._cursor
+        assert cursor is not None
+        for rec in cursor:
+            self.ledger.read += 1
+            if cursor.pass_ > 0:
+                self.ledger.repeated += 1
+            yield rec
+
+    def samples(self) -> Iterator[PatchSet]:
+        """The PatchSets of this reader's epoch, before packing (bad samples skipped or raised)."""
+        self._setup()
+        yield from self._sample_stream()
+
+    def _sample_stream(self) -> Iterator[PatchSet]:
+        r = self.recipe
+        assert self._shuffle is not None
         for rec in self._shuffle(self._records()):
             try:
                 yield process_record(rec, r, self.epoch)
@@ -155,52 +222,64 @@ class Pipeline:
                 self.ledger.skipped.append(Skip(err.shard, err.key, err.stage, err.cause))
 
     def __iter__(self) -> Iterator[PackedBatch]:
-        p = self.recipe.packing
-        self.ledger = Ledger()
-        self._batches = 0
-        skip, self._skip_batches = self._skip_batches, 0
-        self._packer = packer = Packer(
-            seq_len=p.seq_len, rows=p.rows, max_images_per_row=p.max_images_per_row,
-            buffer=p.buffer, algorithm=p.algorithm,
-        )
-
-        def emit(batch: PackedBatch) -> Iterator[PackedBatch]:
+        self._setup()
+        packer = self._packer
+        assert packer is not None
+        target = self.batch_target
+        if target is not None and self._batches >= target:
+            return
+        for ps in self._sample_stream():
+            for batch in packer.push(ps):
+                self.ledger.emitted += batch.num_images
+                self._batches += 1
+                yield batch
+                if target is not None and self._batches >= target:
+                    return
+        for batch in packer.flush():
             self.ledger.emitted += batch.num_images
             self._batches += 1
-            if self._batches > skip:
-                yield batch
-
-        for ps in self.samples():
-            for batch in packer.push(ps):
-                yield from emit(batch)
-        for batch in packer.flush():
-            yield from emit(batch)
+            yield batch
+            if target is not None and self._batches >= target:
+                return
 
     def state_dict(self) -> dict[str, Any]:
-        """JSON-able position: epoch and batches yielded, tied to the recipe and shard list."""
+        """Small JSON-able position, valid between batches: reader position, shuffle-buffer contents
+        (as shard and sample index) and generator state, packer carry-over, ledger."""
+        cursor, shuffle, packer = self._cursor, self._shuffle, self._packer
+        if self._resume is not None:  # loaded but not iterated yet: the loaded state still stands
+            return self._resume
+        fresh = cursor is None
         return {
-            "fingerprint": self.recipe.fingerprint(),
+            "version": STATE_VERSION,
+            "fingerprint": self._fingerprint,
             "shards": len(self.shards),
             "epoch": self.epoch,
-            "batches": self._batches,
             "rank": self.rank,
             "world_size": self.world_size,
             "worker": self.worker,
             "num_workers": self.num_workers,
+            "batches": 0 if fresh else self._batches,
+            "reader": ReaderCursor([]).state_dict() if fresh else cursor.state_dict(),
+            "shuffle_rng": None if fresh else shuffle.rng.bit_generator.state,
+            "shuffle_held": [] if fresh else [[rec.url, rec.index] for rec in shuffle.held],
+            "pending": [] if fresh else [[ps.meta["shard"], ps.meta["index"]] for ps in packer.pending],
+            "ledger": Ledger().state_dict() if fresh else self.ledger.state_dict(),
         }
 
     def load_state_dict(self, state: dict[str, Any]) -> None:
-        """Resume: the next iteration continues right after the saved batch.
+        """Resume: the next iteration continues right after the saved batch, exactly.
 
-        This version replays the epoch up to the saved point (exact, but costs the work already
-        done); it refuses a state saved under another recipe or reader layout.
+        Refuses a state saved under another recipe or reader layout. Restoring re-reads the few
+        buffered samples from their shards and skips the rest of the read ones by name only.
         """
-        if state.get("fingerprint") != self.recipe.fingerprint():
+        if state.get("version") != STATE_VERSION:
+            raise ValueError(f"unknown state version {state.get('version')!r} (this patchloom writes {STATE_VERSION})")
+        if state.get("fingerprint") != self._fingerprint:
             raise ValueError("this state was saved under a different recipe (fingerprints differ)")
         for name in ("shards", "rank", "world_size", "worker", "num_workers"):
             mine = len(self.shards) if name == "shards" else getattr(self, name)
             if state.get(name) != mine:
                 raise ValueError(f"state was saved with {name}={state.get(name)}, this pipeline has {mine}")
         self.epoch = int(state["epoch"])
-        self._skip_batches = int(state["batches"])
-        self._batches = self._skip_batches
+        self._resume = state if state["shuffle_rng"] is not None else None
+        self._cursor = None

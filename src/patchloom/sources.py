@@ -96,7 +96,7 @@ def split_shards(shards: Sequence[str], *, slot: int, slots: int) -> list[ShardT
 
     With at least as many shards as slots, slot s takes shards s, s+slots, ... With fewer shards,
     several slots share a shard and each keeps every k-th sample of it, so no reader idles and no
-    sample is duplicated (each sharing reader still scans the whole shard's bytes).
+    sample is duplicated (each sharing reader streams past the others' samples without copying them).
     """
     if not 0 <= slot < slots:
         raise ValueError(f"reader slot {slot} out of range for {slots} slots")
@@ -127,22 +127,71 @@ def open_shard(url: str, *, allow_shell: bool = False):
     return gopen.gopen(url, "rb")
 
 
-def read_shard(task: ShardTask, *, allow_shell: bool = False) -> Iterator[Record]:
-    """Records of one shard task, in tar order, with their index within the shard."""
+def read_shard(
+    task: ShardTask,
+    *,
+    allow_shell: bool = False,
+    start: int = 0,
+    wanted: set[int] | None = None,
+) -> Iterator[Record]:
+    """Records of one shard task, in tar order, with their index within the shard.
+
+    Samples before `start`, of other readers' parts, or (when given) not in `wanted` are skipped by
+    file name, so their bytes are never copied out of the tar stream (cheap resume and splits).
+    """
     # Imported here: importing webdataset also imports torch when it is installed (seconds).
-    from webdataset.tariterators import group_by_keys, tar_file_iterator
+    from collections import deque
+
+    from webdataset.tariterators import base_plus_ext, group_by_keys, tar_file_iterator
+
+    chosen: deque[tuple[str, int]] = deque()  # (key, index) of selected samples, in tar order
+    last = {"key": None, "index": -1, "keep": False}
+
+    def select(fname: str) -> bool:
+        key, _ = base_plus_ext(fname)
+        if key is None:
+            return False
+        if key != last["key"]:
+            last["key"], last["index"] = key, last["index"] + 1
+            i = last["index"]
+            last["keep"] = i >= start and i % task.parts == task.part and (wanted is None or i in wanted)
+            if last["keep"]:
+                chosen.append((key, i))
+        return last["keep"]
 
     stream = open_shard(task.url, allow_shell=allow_shell)
     try:
-        files = tar_file_iterator(stream)
+        files = tar_file_iterator(stream, select_files=select)
         files = ({**f, "__url__": task.url} for f in files)
-        for index, sample in enumerate(group_by_keys(files)):
-            if index % task.parts != task.part:
-                continue
+        for sample in group_by_keys(files):
+            key = sample["__key__"]
+            while chosen and chosen[0][0] != key:  # a selected sample whose files all failed
+                chosen.popleft()
+            _, index = chosen.popleft()
             members = {k: v for k, v in sample.items() if not k.startswith("__")}
-            yield Record(key=sample["__key__"], url=task.url, index=index, members=members)
+            yield Record(key=key, url=task.url, index=index, members=members)
+            if wanted is not None and index >= max(wanted):
+                return
     finally:
         stream.close()
+
+
+def fetch_records(refs: Sequence[tuple[str, int]], *, allow_shell: bool = False) -> list[Record]:
+    """The records at (shard url, index) positions, in the order given (to rebuild buffers on resume)."""
+    by_url: dict[str, set[int]] = {}
+    for url, index in refs:
+        by_url.setdefault(url, set()).add(int(index))
+    found: dict[tuple[str, int], Record] = {}
+    for url, indices in by_url.items():
+        for rec in read_shard(ShardTask(url), allow_shell=allow_shell, wanted=indices):
+            found[(url, rec.index)] = rec
+    missing = [ref for ref in refs if (ref[0], int(ref[1])) not in found]
+    if missing:
+        raise SourceError(
+            f"cannot resume: {len(missing)} buffered samples are no longer in their shards "
+            f"(first: shard {missing[0][0]}, sample #{missing[0][1]}); did the shards change?"
+        )
+    return [found[(url, int(index))] for url, index in refs]
 
 
 def read_tasks(
@@ -212,9 +261,77 @@ def reader_tasks(
     slots = world_size * num_workers
     if len(shards) < slots and worker == 0 and rank == 0:
         warnings.warn(
-            f"{len(shards)} shards for {slots} readers (ranks x workers): readers share shards and "
-            "each scans a whole shard to keep its share; more, smaller shards read faster",
+            f"{len(shards)} shards for {slots} readers (ranks x workers): readers share shards, each "
+            "keeping every k-th sample and streaming past the rest; more, smaller shards read faster",
             stacklevel=2,
         )
     order = shard_order(shards, seed=seed, epoch=epoch, shuffle=shuffle_shards)
     return split_shards(order, slot=rank * num_workers + worker, slots=slots)
+
+
+class ReaderCursor:
+    """One reader's walk over its shard tasks, with a JSON-able position for exact resume.
+
+    The position is (pass, task, index): the next sample index to read in task `task` of pass
+    `pass`. With `cycle`, the share is read again (pass 1, 2, ...) when it runs out, for
+    equalised epochs. `limit` caps the records it yields in total (an epoch defined in samples).
+    """
+
+    def __init__(
+        self,
+        tasks: Sequence[ShardTask],
+        *,
+        allow_shell: bool = False,
+        on_shard_error: Callable[[str, Exception], None] | None = None,
+        cycle: bool = False,
+        limit: int | None = None,
+    ) -> None:
+        self.tasks = list(tasks)
+        self.allow_shell = allow_shell
+        self.on_shard_error = on_shard_error
+        self.cycle = cycle
+        self.limit = limit
+        self.pass_ = 0
+        self.task = 0
+        self.index = 0
+        self.count = 0  # records yielded so far (across passes)
+        self.done = False
+
+    def state_dict(self) -> dict:
+        return {"pass": self.pass_, "task": self.task, "index": self.index, "count": self.count, "done": self.done}
+
+    def load_state_dict(self, state: dict) -> None:
+        self.pass_, self.task, self.index = int(state["pass"]), int(state["task"]), int(state["index"])
+        self.count, self.done = int(state["count"]), bool(state["done"])
+
+    def __iter__(self) -> Iterator[Record]:
+        if self.limit is not None and self.count >= self.limit:
+            self.done = True
+        while not self.done:
+            produced = 0
+            fresh_pass = self.task == 0 and self.index == 0
+            while self.task < len(self.tasks):
+                task = self.tasks[self.task]
+                try:
+                    for rec in read_shard(task, allow_shell=self.allow_shell, start=self.index):
+                        self.index = rec.index + 1
+                        self.count += 1
+                        produced += 1
+                        if self.limit is not None and self.count >= self.limit:
+                            self.done = True
+                        yield rec
+                        if self.done:
+                            return
+                except SourceError:
+                    raise
+                except Exception as exc:  # tar or I/O failure of this shard
+                    if self.on_shard_error is None:
+                        raise SourceError(f"shard {task.url}: cannot read: {exc}") from exc
+                    self.on_shard_error(task.url, exc)
+                self.task, self.index = self.task + 1, 0
+            if self.limit is not None and self.count >= self.limit:
+                self.done = True
+            elif not self.cycle or (fresh_pass and produced == 0):
+                self.done = True  # one pass, or a share with nothing in it: cannot top up
+            else:
+                self.pass_, self.task, self.index = self.pass_ + 1, 0, 0

@@ -1,0 +1,93 @@
+"""Test helpers shipped with the library, for users who build their own recipes and loaders."""
+
+from __future__ import annotations
+
+import json
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .batch import PackedBatch
+from .pipeline import Pipeline
+
+
+@dataclass(slots=True)
+class ResumeReport:
+    """What `check_resume` checked: positions, state sizes and the time resume cost."""
+
+    batches: int
+    positions: list[int] = field(default_factory=list)
+    state_bytes: list[int] = field(default_factory=list)
+    state_seconds: list[float] = field(default_factory=list)
+    load_seconds: list[float] = field(default_factory=list)
+    full_seconds: float = 0.0
+
+
+def batches_equal(a: PackedBatch, b: PackedBatch) -> str | None:
+    """None if two batches are identical byte for byte, else the name of the first field that differs."""
+    if a.keys != b.keys:
+        return "keys"
+    for name, x in a.to_arrays().items():
+        y = b.to_arrays().get(name)
+        if y is None or x.dtype != y.dtype or x.shape != y.shape or x.tobytes() != y.tobytes():
+            return name
+    if set(b.to_arrays()) != set(a.to_arrays()):
+        return "masked"
+    return None
+
+
+def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> ResumeReport:
+    """Run a pipeline through, then restore from its state at every `every`-th batch (from 0 to the
+    end, inclusive) in a fresh pipeline and require the rest to match byte for byte.
+
+    The state goes through JSON on the way, as it would in a checkpoint. Raises AssertionError
+    naming the position, batch and field of the first difference.
+    """
+    if every < 1:
+        raise ValueError("every must be >= 1")
+    pipe = make_pipeline()
+    full: list[PackedBatch] = []
+    states: dict[int, str] = {}
+    report = ResumeReport(batches=0)
+    t0 = time.perf_counter()
+    states[0] = json.dumps(pipe.state_dict())
+    for batch in pipe:
+        full.append(batch)
+        if len(full) % every == 0:
+            t = time.perf_counter()
+            states[len(full)] = json.dumps(pipe.state_dict())
+            report.state_seconds.append(time.perf_counter() - t)
+    states[len(full)] = json.dumps(pipe.state_dict())
+    report.full_seconds = time.perf_counter() - t0
+    report.batches = len(full)
+    for pos, text in sorted(states.items()):
+        resumed = make_pipeline()
+        t = time.perf_counter()
+        resumed.load_state_dict(json.loads(text))
+        it = iter(resumed)
+        rest = []
+        first = next(it, None)
+        report.load_seconds.append(time.perf_counter() - t)
+        if first is not None:
+            rest.append(first)
+            rest.extend(it)
+        if len(rest) != len(full) - pos:
+            raise AssertionError(
+                f"resumed at batch {pos}: got {len(rest)} more batches, the full run had {len(full) - pos}"
+            )
+        for i, (a, b) in enumerate(zip(rest, full[pos:])):
+            diff = batches_equal(a, b)
+            if diff is not None:
+                raise AssertionError(f"resumed at batch {pos}: batch {pos + i} differs in {diff}")
+        report.positions.append(pos)
+        report.state_bytes.append(len(text))
+    return report
+
+
+def assert_arrays_equal(a: PackedBatch, b: PackedBatch) -> None:
+    """numpy-style assertion of batch equality, for use in tests."""
+    diff = batches_equal(a, b)
+    if diff is not None:
+        raise AssertionError(f"batches differ in {diff}: {np.asarray(a.to_arrays().get(diff, []))!r:.200}")
