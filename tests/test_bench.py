@@ -141,3 +141,17 @@ def test_drop_mode_bench_reports_every_mode(shard: str, capsys: pytest.CaptureFi
     res = bench_drop_modes(Recipe.from_dict(DEMO_RECIPE), shards=shard, max_images=8, repeats=1)
     assert abs(res["modes"]["random 0.5"]["realised_mean"] - 0.5) < 0.02
     assert res["modes"]["random 0.5"]["us_per_image"] > 0
+
+
+def test_resume_bench_measures_save_and_load(shard: str, capsys: pytest.CaptureFixture[str]) -> None:
+    from patchloom.bench_resume import bench_resume
+    from patchloom.cli import main
+
+    recipe = Recipe.from_dict(DEMO_RECIPE).replace(packing={"rows": 1, "buffer": 4})
+    res = bench_resume(recipe, shards=shard, points=3)
+    assert res["batches"] >= 2 and res["state_bytes_max"] > 0 and res["resume_first_batch_s"] > 0
+    assert res["positions"][0] >= 1 and res["positions"][-1] <= res["batches"]
+    path = Path(shard).parent / "one-row.yaml"
+    path.write_text(recipe.to_yaml())
+    assert main(["bench", str(path), "--shards", shard, "--resume", "--no-progress"]) == 0
+    assert "state_dict()" in capsys.readouterr().out

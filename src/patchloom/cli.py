@@ -86,6 +86,14 @@ def cmd_bench(args: argparse.Namespace) -> int:
     spec = shards if shards is not None else recipe.source.shards
     if ensure_demo_shards(spec, demo_dir=args.data, progress=progress):
         print(f"made demo shards in {args.data}", file=sys.stderr)
+    if args.resume:
+        from .bench_resume import bench_resume, format_resume_bench
+
+        result = bench_resume(recipe, shards=shards)
+        print(format_resume_bench(result))
+        if args.json:
+            Path(args.json).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
+        return 0
     if args.drop_modes:
         from .bench_drops import bench_drop_modes, format_drop_bench
 
@@ -145,6 +153,8 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument("--data", default="patchloom-demo", help="where demo shards are made if needed")
     bench.add_argument("--drop-modes", action="store_true",
                        help="instead: cost per image and realised rate of every token-drop mode")
+    bench.add_argument("--resume", action="store_true",
+                       help="instead: cost of state_dict() and of resuming mid-epoch")
     bench.add_argument("--no-progress", action="store_true", help="no progress bars")
     bench.set_defaults(func=cmd_bench)
 
