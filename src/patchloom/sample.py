@@ -103,16 +103,25 @@ def _reduce_hint(opened: OpenedImage, plan: SizePlan) -> tuple[int, int]:
 
 
 def finish(image: Image.Image, plan: SizePlan, recipe: Recipe, *, seed: int, epoch: int, key: str,
-           label: int | None, meta: dict[str, Any], stage: _Stage | None = None) -> PatchSet:
-    """Resize to the plan, augment after resize, patchify, drop, patch ops, output dtype."""
+           label: int | None, meta: dict[str, Any], stage: _Stage | None = None,
+           trace: dict[str, Any] | None = None) -> PatchSet:
+    """Resize to the plan, augment after resize, patchify, drop, patch ops, output dtype.
+
+    `trace`, when given, receives each intermediate (for the inspection report: same code path)."""
     stage = stage or _Stage()
+    if trace is not None:
+        trace["decoded"], trace["plan"] = image, plan
     stage.name = "resize"
     resized = np.asarray(resize_to_plan(image, plan, resample=recipe.sizing.resample,
                                         background=recipe.decode.background))
+    if trace is not None:
+        trace["resized"] = resized
     aug = _augmenter(recipe)
     if aug is not None and aug.has_after:
         stage.name = "augment"
         resized = aug.after_resize(resized, _seed32(seed, epoch, key, "augment-after"))
+    if trace is not None:
+        trace["augmented"] = resized
     stage.name = "patches"
     grid = (plan.grid_h, plan.grid_w)
     ps = PatchSet(patchify(resized, plan.patch_size), grid_coords(*grid), grid, key, label,
@@ -123,6 +132,8 @@ def finish(image: Image.Image, plan: SizePlan, recipe: Recipe, *, seed: int, epo
 
         decision = decide_drop(recipe.drop, grid, ps.patches, sample_rng(seed, epoch, key, "drop"))
         ps = apply_drop(ps, decision, recipe.drop.apply)
+        if trace is not None:
+            trace["drop"] = decision
     out = recipe.output
     if recipe.patch_ops:
         stage.name = "patch_ops"
@@ -137,24 +148,33 @@ def finish(image: Image.Image, plan: SizePlan, recipe: Recipe, *, seed: int, epo
         ps.patches = values.astype(out.dtype) if standardized else normalize(values, out.mean, out.std, out.dtype)
     else:
         ps.patches = normalize(ps.patches, out.mean, out.std, out.dtype)
+    if trace is not None:
+        trace["patchset"] = ps
     return ps
 
 
 def from_pixels(image: Image.Image, recipe: Recipe, *, seed: int, epoch: int, key: str, label: int | None,
-                meta: dict[str, Any], stage: _Stage | None = None) -> PatchSet:
+                meta: dict[str, Any], stage: _Stage | None = None,
+                trace: dict[str, Any] | None = None) -> PatchSet:
     """Decoded RGB image -> PatchSet (augment before sizing, plan from the pixels, finish)."""
     stage = stage or _Stage()
+    if trace is not None:
+        trace["original"] = image
     aug = _augmenter(recipe)
     if aug is not None and aug.has_before:
         stage.name = "augment"
         image = Image.fromarray(aug.before_sizing(np.asarray(image), _seed32(seed, epoch, key, "augment-before")))
     stage.name = "sizing"
     plan = plan_for(image.height, image.width, recipe, seed=seed, epoch=epoch, key=key)
-    return finish(image, plan, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage)
+    return finish(image, plan, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage,
+                  trace=trace)
 
 
-def process_record(rec: Record, recipe: Recipe, epoch: int) -> PatchSet:
-    """One raw record -> PatchSet, raising SampleError naming shard, key and stage on failure."""
+def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, Any] | None = None) -> PatchSet:
+    """One raw record -> PatchSet, raising SampleError naming shard, key and stage on failure.
+
+    `trace`, when given, receives the intermediates: original, decoded, plan, resized, augmented,
+    drop (a DropDecision) and patchset."""
     stage = _Stage()
     seed, key = recipe.seed, rec.key
     try:
@@ -169,13 +189,17 @@ def process_record(rec: Record, recipe: Recipe, epoch: int) -> PatchSet:
         if aug is not None and aug.has_before:
             # Geometry changes the size first, so the plan needs the full decoded pixels.
             image = opened.decode(background=bg)
-            return from_pixels(image, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage)
+            return from_pixels(image, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage,
+                               trace=trace)
         stage.name = "sizing"
         plan = plan_for(opened.height, opened.width, recipe, seed=seed, epoch=epoch, key=key)
         stage.name = "decode"
         hint = _reduce_hint(opened, plan) if recipe.decode.reduced_jpeg else None
         image = opened.decode(background=bg, reduce_to=hint)
-        return finish(image, plan, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage)
+        if trace is not None:
+            trace["original"] = image
+        return finish(image, plan, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage,
+                      trace=trace)
     except SampleError:
         raise
     except Exception as exc:
