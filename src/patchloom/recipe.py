@@ -1,20 +1,38 @@
 """Recipe: the validated, fingerprinted description of one preprocessing run.
 
-A recipe is data. It is loaded with YAML's safe loader, validated by pydantic (unknown keys are
-errors), and never names code to run.
+A recipe is data. It is loaded with a restricted YAML safe loader (no Python or custom tags, no
+duplicate keys, size and alias-expansion caps), validated by pydantic (unknown keys are errors,
+with a did-you-mean), and never names code to run.
+
+A recipe file may start with ``extends: base.yaml`` (a path relative to the extending file; the
+base may extend another file in turn, a cycle is an error). The base is loaded first and the
+extending file's keys override it:
+
+- mappings merge key by key, at every depth;
+- any other value, lists included, replaces the base's value whole (lists are not appended to);
+- ``key: null`` in an extending file removes the key, so it takes its schema default. (Where
+  null is itself a setting, e.g. ``source.label_key: null`` for unlabelled data, write it in a
+  file that extends nothing: there null keeps its plain meaning.)
+
+Resolution happens before validation, so an extending recipe validates, prints (``to_yaml``) and
+fingerprints exactly like the same settings written out in full.
 """
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 import json
 import math
+import types
+import typing
 from pathlib import Path
 from typing import Any, Literal
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+RECIPE_VERSION = 1
 RESAMPLE_FILTERS = ("nearest", "box", "bilinear", "hamming", "bicubic", "lanczos")
 DEFAULT_IMAGE_KEYS = ["jpg", "jpeg", "png", "webp", "gif", "bmp", "tif", "tiff"]
 
@@ -24,7 +42,8 @@ class RecipeError(ValueError):
 
 
 class _Section(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    # NaN and infinities are refused: they have no place in a setting and no canonical JSON form.
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
 class SourceConfig(_Section):
@@ -252,6 +271,13 @@ class Recipe(_Section):
     epoch: EpochConfig = Field(default_factory=EpochConfig)
     output: OutputConfig = Field(default_factory=OutputConfig)
 
+    @field_validator("version", mode="before")
+    @classmethod
+    def _known_version(cls, v: Any) -> Any:
+        if type(v) is not int or v != RECIPE_VERSION:
+            raise ValueError(_version_message(v))
+        return v
+
     @field_validator("augment")
     @classmethod
     def _augment_builds(cls, v: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -281,29 +307,47 @@ class Recipe(_Section):
 
     @classmethod
     def from_dict(cls, data: dict[str, Any] | None, *, origin: str = "<dict>") -> Recipe:
-        """Validate a (possibly partial) dict; missing keys take their defaults."""
-        if data is None:
-            data = {}
-        if not isinstance(data, dict):
-            raise RecipeError(f"{origin}: a recipe must be a mapping of sections, got {type(data).__name__}")
-        try:
-            return cls.model_validate(data)
-        except ValidationError as exc:
-            raise RecipeError(_explain(exc, origin)) from None
+        """Validate a (possibly partial) dict; missing keys take their defaults.
+
+        `extends` is refused here: a dict has no file to resolve the base path against."""
+        if isinstance(data, dict) and "extends" in data:
+            raise RecipeError(
+                f"{origin}: `extends` works only in recipe files (Recipe.from_file), where the base path "
+                f"is resolved against the extending file; merge the base settings into the dict instead"
+            )
+        return cls._validate(data, origin=origin)
 
     @classmethod
     def from_file(cls, path: str | Path) -> Recipe:
-        """Load a YAML recipe with the safe loader and validate it."""
+        """Load a YAML recipe (restricted safe loader), resolve its `extends` chain, and validate it."""
         path = Path(path)
+        data, provenance = _resolve_file(path, chain=())
+        return cls._validate(data, origin=str(path), provenance=provenance, in_file=True)
+
+    @classmethod
+    def _validate(
+        cls,
+        data: Any,
+        *,
+        origin: str,
+        provenance: dict[tuple[Any, ...], str] | None = None,
+        in_file: bool = False,
+    ) -> Recipe:
+        if data is None:
+            data = {}
+        if not isinstance(data, dict):
+            raise RecipeError(f"{origin}: a recipe must be a mapping of sections, got {_kind(data)}")
+        if "version" in data:  # a recipe of another version cannot be read key by key: say only that
+            v = data["version"]
+            if type(v) is not int or v != RECIPE_VERSION:
+                where = _where(("version",), provenance, origin)
+                raise RecipeError(f"{origin}: invalid recipe\n  {where}version: {_version_message(v)}")
         try:
-            text = path.read_text(encoding="utf-8")
-        except OSError as exc:
-            raise RecipeError(f"cannot read recipe {path}: {exc.strerror}") from None
-        try:
-            data = yaml.safe_load(text)
-        except yaml.YAMLError as exc:
-            raise RecipeError(f"{path}: not valid YAML: {exc}") from None
-        return cls.from_dict(data, origin=str(path))
+            return cls.model_validate(data)
+        except ValidationError as exc:
+            raise RecipeError(
+                _explain(exc, origin, data=data, provenance=provenance, in_file=in_file)
+            ) from None
 
     def to_dict(self) -> dict[str, Any]:
         """The fully resolved recipe, defaults filled in, as plain JSON-able data."""
@@ -328,17 +372,510 @@ class Recipe(_Section):
         return Recipe.from_dict(data)
 
 
-def _explain(exc: ValidationError, origin: str) -> str:
+def _version_message(v: Any) -> str:
+    newer = type(v) is int and v > RECIPE_VERSION
+    hint = "; a recipe written for a newer format needs a newer patchloom" if newer else ""
+    return f"must be {RECIPE_VERSION}, the only recipe version this patchloom reads (got {_show(v)}){hint}"
+
+
+# ---------------------------------------------------------------------------------------------
+# YAML: the safe loader, narrowed to plain data and bounded in size.
+
+MAX_RECIPE_BYTES = 1 << 20  # a recipe is a page of settings; anything near this is not one
+MAX_RECIPE_NODES = 100_000  # values after expanding aliases (stops alias bombs before they expand)
+MAX_RECIPE_DEPTH = 64  # nesting of mappings and lists
+
+_YAML_TAG_PREFIX = "tag:yaml.org,2002:"
+_MERGE_TAG = _YAML_TAG_PREFIX + "merge"
+_REFUSED_STD_TAGS = {_YAML_TAG_PREFIX + t for t in ("binary", "set", "omap", "pairs")}
+
+
+class _Refused(yaml.YAMLError):
+    """A YAML document that parses but is not acceptable as a recipe."""
+
+    def __init__(self, message: str, mark: Any = None) -> None:
+        super().__init__(message)
+        self.message = message
+        self.mark = mark
+
+    def __str__(self) -> str:
+        return f"{_line(self.mark)}{self.message}"
+
+
+def _line(mark: Any) -> str:
+    return f"line {mark.line + 1}: " if mark is not None else ""
+
+
+def _short_tag(tag: str) -> str:
+    return "!!" + tag[len(_YAML_TAG_PREFIX):] if tag.startswith(_YAML_TAG_PREFIX) else tag
+
+
+class _RecipeLoader(yaml.SafeLoader):
+    """The safe loader with limits: plain data only (mappings, lists, strings, numbers, booleans,
+    null), bounded nesting; the composed tree is checked for size and duplicate keys before any
+    value is built."""
+
+    def __init__(self, stream: str) -> None:
+        super().__init__(stream)
+        self._depth = 0
+
+    def compose_node(self, parent: Any, index: Any) -> Any:
+        self._depth += 1
+        try:
+            if self._depth > MAX_RECIPE_DEPTH:
+                raise _Refused(
+                    f"nested more than {MAX_RECIPE_DEPTH} levels deep; a recipe is a few levels of settings",
+                    self.peek_event().start_mark,
+                )
+            return super().compose_node(parent, index)
+        finally:
+            self._depth -= 1
+
+
+def _refuse_tag(loader: _RecipeLoader, *args: Any) -> Any:
+    node = args[-1]  # a multi-constructor also gets the tag's suffix first
+    tag = _short_tag(node.tag)
+    if node.tag.startswith(_YAML_TAG_PREFIX + "python/"):
+        why = "a recipe is data, so it cannot create Python objects or run code"
+    else:
+        why = "a recipe holds only mappings, lists, strings, numbers, true/false and null"
+    raise _Refused(f"tag {tag!r} is refused: {why}", node.start_mark)
+
+
+def _timestamp_as_text(loader: _RecipeLoader, node: yaml.Node) -> str:
+    # YAML 1.1 reads an unquoted 2024-01-01 as a date; a recipe has no dates, so keep the text.
+    return loader.construct_scalar(node)
+
+
+_RecipeLoader.add_constructor(None, _refuse_tag)
+for _tag in _REFUSED_STD_TAGS:
+    _RecipeLoader.add_constructor(_tag, _refuse_tag)
+_RecipeLoader.add_constructor(_YAML_TAG_PREFIX + "timestamp", _timestamp_as_text)
+# Python tags are not registered by the safe loader; listing them anyway keeps the refusal explicit.
+_RecipeLoader.add_multi_constructor(_YAML_TAG_PREFIX + "python/", _refuse_tag)
+
+
+def _check_tree(loader: _RecipeLoader, root: yaml.Node) -> None:
+    """Count values with aliases expanded (a shared node counts each time it is used), refuse a
+    structure that contains itself, and refuse duplicate keys in a mapping."""
+    sizes: dict[int, int] = {}
+    open_nodes: set[int] = set()
+
+    def size(node: yaml.Node) -> int:
+        nid = id(node)
+        if nid in sizes:
+            return sizes[nid]
+        if nid in open_nodes:
+            raise _Refused("an alias refers to a node that contains it (a recursive structure)", node.start_mark)
+        total = 1
+        if isinstance(node, (yaml.SequenceNode, yaml.MappingNode)):
+            open_nodes.add(nid)
+            if isinstance(node, yaml.MappingNode):
+                _check_duplicates(loader, node)
+                children = [c for pair in node.value for c in pair]
+            else:
+                children = list(node.value)
+            for child in children:
+                total += size(child)
+                if total > MAX_RECIPE_NODES:
+                    raise _Refused(
+                        f"more than {MAX_RECIPE_NODES} values once aliases are expanded; "
+                        f"a recipe is far smaller, so this looks like aliases nested to multiply each other",
+                        node.start_mark,
+                    )
+            open_nodes.discard(nid)
+        sizes[nid] = total
+        return total
+
+    size(root)
+
+
+def _check_duplicates(loader: _RecipeLoader, node: yaml.MappingNode) -> None:
+    seen: dict[Any, int] = {}
+    for key_node, _ in node.value:
+        if not isinstance(key_node, yaml.ScalarNode) or key_node.tag == _MERGE_TAG:
+            continue  # `<<` merge keys may be overridden by the mapping's own keys; complex keys fail later
+        key = loader.construct_object(key_node)
+        line = key_node.start_mark.line + 1
+        try:
+            first = seen.get(key)
+        except TypeError:
+            continue
+        if first is not None:
+            raise _Refused(
+                f"key {_show(key)} appears twice in one mapping (lines {first} and {line}); "
+                f"YAML would silently keep the last one, so write it once",
+                key_node.start_mark,
+            )
+        seen[key] = line
+
+
+def _load_yaml(path: Path) -> Any:
+    """Read one recipe file into plain data; every failure is a RecipeError naming the file."""
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise RecipeError(f"cannot read recipe {path}: {exc.strerror or exc}") from None
+    if len(raw) > MAX_RECIPE_BYTES:
+        raise RecipeError(
+            f"{path}: refused: {len(raw)} bytes is over the {MAX_RECIPE_BYTES >> 20} MiB limit for a recipe file"
+        )
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise RecipeError(f"{path}: not UTF-8 text (bad byte at offset {exc.start})") from None
+    loader = _RecipeLoader(text)
+    try:
+        node = loader.get_single_node()
+        if node is None:
+            return None
+        _check_tree(loader, node)
+        return loader.construct_document(node)
+    except _Refused as exc:
+        # "not valid YAML for a recipe": the text may be valid YAML, but not as a recipe.
+        raise RecipeError(f"{path}: not valid YAML for a recipe: {exc}") from None
+    except yaml.MarkedYAMLError as exc:
+        raise RecipeError(f"{path}: not valid YAML: {_yaml_problem(exc)}") from None
+    except yaml.YAMLError as exc:
+        raise RecipeError(f"{path}: not valid YAML: {' '.join(str(exc).split())}") from None
+    except RecursionError:
+        raise RecipeError(f"{path}: not valid YAML for a recipe: nested too deeply") from None
+    finally:
+        loader.dispose()
+
+
+def _yaml_problem(exc: yaml.MarkedYAMLError) -> str:
+    """PyYAML's several-line error, as one line: where, what, and what it was inside."""
+    text = exc.problem or "unreadable"
+    if exc.problem_mark is not None:
+        text = f"line {exc.problem_mark.line + 1}, column {exc.problem_mark.column + 1}: {text}"
+    if exc.context:
+        where = ""
+        if exc.context_mark is not None:
+            where = f" at line {exc.context_mark.line + 1}, column {exc.context_mark.column + 1}"
+        text += f" ({exc.context}{where})"
+    return text
+
+
+# ---------------------------------------------------------------------------------------------
+# extends: resolve a chain of files into one mapping, remembering which file set each value.
+
+Provenance = dict[tuple[Any, ...], str]
+
+
+def _resolve_file(path: Path, chain: tuple[Path, ...]) -> tuple[Any, Provenance]:
+    """The file's data with its `extends` chain merged in, and the file that set each leaf value."""
+    here = path.resolve()
+    if here in (p.resolve() for p in chain):
+        names = " -> ".join(str(p) for p in (*chain, path))
+        raise RecipeError(f"{path}: extends cycle: {names}")
+    data = _load_yaml(path)
+    if not isinstance(data, dict) or "extends" not in data:
+        provenance: Provenance = {}
+        if isinstance(data, dict):
+            _record_leaves(data, (), str(path), provenance)
+        elif data is not None:
+            raise RecipeError(f"{path}: a recipe must be a mapping of sections, got {_kind(data)}")
+        return data, provenance
+    data = dict(data)
+    target = data.pop("extends")
+    if not isinstance(target, str) or not target.strip():
+        raise RecipeError(
+            f"{path}: invalid recipe\n  extends: must be the path of a base recipe file, relative to this "
+            f"file (got {_show(target)})"
+        )
+    base_path = path.parent / target
+    if not base_path.is_file():
+        reason = "is a folder" if base_path.is_dir() else "no such file"
+        raise RecipeError(f"{path}: extends {target!r}: cannot read recipe {base_path}: {reason}")
+    base, provenance = _resolve_file(base_path, (*chain, path))
+    if base is None:
+        base = {}
+    return _merge(base, data, (), str(path), provenance), provenance
+
+
+def _record_leaves(data: dict[str, Any], prefix: tuple[Any, ...], origin: str, provenance: Provenance) -> None:
+    for key, value in data.items():
+        if isinstance(value, dict) and value:
+            _record_leaves(value, (*prefix, key), origin, provenance)
+        else:
+            provenance[(*prefix, key)] = origin
+
+
+def _forget(provenance: Provenance, prefix: tuple[Any, ...]) -> None:
+    for p in [p for p in provenance if p[: len(prefix)] == prefix]:
+        del provenance[p]
+
+
+def _merge(
+    base: dict[str, Any], over: dict[str, Any], prefix: tuple[Any, ...], origin: str, provenance: Provenance
+) -> dict[str, Any]:
+    """`over` on top of `base`: mappings merge, anything else replaces, null removes the key."""
+    out = dict(base)
+    for key, value in over.items():
+        where = (*prefix, key)
+        below = out.get(key)
+        if value is None:
+            out.pop(key, None)
+            _forget(provenance, where)
+        elif isinstance(value, dict):
+            if not isinstance(below, dict):
+                _forget(provenance, where)
+                below = {}
+            out[key] = _merge(below, value, where, origin, provenance)
+            if not value and not out[key]:
+                provenance[where] = origin
+        else:
+            _forget(provenance, where)
+            out[key] = value
+            provenance[where] = origin
+    return out
+
+
+def _where(loc: tuple[Any, ...], provenance: Provenance | None, origin: str) -> str:
+    """'' when the value at `loc` came from the file being loaded, else 'BASE-FILE: '."""
+    if not provenance:
+        return ""
+    for n in range(len(loc), 0, -1):
+        if loc[:n] in provenance:
+            src = provenance[loc[:n]]
+            break
+    else:
+        files = {f for p, f in provenance.items() if p[: len(loc)] == loc}
+        src = files.pop() if len(files) == 1 else origin
+    return "" if src == origin else f"{src}: "
+
+
+# ---------------------------------------------------------------------------------------------
+# Error messages: one line per problem, naming the key path and what is allowed there.
+
+
+def _strip_none(ann: Any) -> Any:
+    """X for `X | None`; the annotation itself otherwise."""
+    if _is_union(ann):
+        args = [a for a in typing.get_args(ann) if a is not type(None)]
+        if len(args) == 1:
+            return args[0]
+    return ann
+
+
+def _is_union(ann: Any) -> bool:
+    return typing.get_origin(ann) in (typing.Union, types.UnionType)
+
+
+def _model_of(ann: Any) -> type[BaseModel] | None:
+    ann = _strip_none(ann)
+    return ann if isinstance(ann, type) and issubclass(ann, BaseModel) else None
+
+
+def _follow(loc: tuple[Any, ...]) -> tuple[tuple[Any, ...], Any, bool]:
+    """Walk an error location through the schema.
+
+    Returns the location to report, the annotation there (None where the schema says nothing:
+    an unknown key, or free-form data) and whether the location ends at a union whose member
+    names pydantic had put into the location (those are reported once, at the union)."""
+    ann: Any = Recipe
+    path: list[Any] = []
+    for n, part in enumerate(loc):
+        if ann is None:
+            return (*path, *loc[n:]), None, False
+        model = _model_of(ann)
+        inner = _strip_none(ann)
+        if model is not None:
+            if isinstance(part, str) and part in model.model_fields:
+                ann = model.model_fields[part].annotation
+                path.append(part)
+                continue
+            return (*path, *loc[n:]), None, False
+        if _is_union(inner):
+            return tuple(path), ann, True
+        origin = typing.get_origin(inner)
+        args = typing.get_args(inner)
+        if isinstance(part, int) and origin is list:
+            ann = args[0]
+        elif isinstance(part, int) and origin is tuple:
+            ann = args[0] if len(args) == 2 and args[1] is Ellipsis else (args[part] if part < len(args) else None)
+        else:
+            ann = None
+        path.append(part)
+    return tuple(path), ann, False
+
+
+def _lookup(data: Any, loc: tuple[Any, ...]) -> Any:
+    for part in loc:
+        try:
+            data = data[part]
+        except (KeyError, IndexError, TypeError):
+            return _NOTHING
+    return data
+
+
+_NOTHING = object()
+
+_WORDS: dict[Any, tuple[str, str]] = {
+    str: ("a string", "strings"),
+    int: ("an integer", "integers"),
+    float: ("a number", "numbers"),
+    bool: ("true or false", "true/false values"),
+    type(None): ("null", "nulls"),
+}
+
+
+def _describe(ann: Any, plural: bool = False) -> str:
+    """What a value of this annotation looks like, in words."""
+    if ann in _WORDS:
+        return _WORDS[ann][plural]
+    origin = typing.get_origin(ann)
+    args = typing.get_args(ann)
+    if origin is Literal:
+        choices = ", ".join(_show(a) for a in args)
+        return f"one of {choices}" if len(args) > 1 else _show(args[0])
+    if _is_union(ann):
+        parts = [_describe(a, plural) for a in args]
+        return ", ".join(parts[:-1]) + " or " + parts[-1]
+    if origin is list:
+        return "lists" if plural else f"a list of {_describe(args[0], plural=True)}"
+    if origin is tuple:
+        if len(set(args)) == 1:
+            text = f"{len(args)} {_describe(args[0], plural=True)}"
+            return f"lists of {text}" if plural else f"a list of {text}"
+        inner = ", ".join(_describe(a).removeprefix("a ").removeprefix("an ") for a in args)
+        return f"[{inner}] pairs" if plural and len(args) == 2 else f"[{inner}]"
+    model = _model_of(ann)
+    if model is not None:
+        return "mappings" if plural else f"a mapping with keys {', '.join(model.model_fields)}"
+    if origin is dict:
+        return "mappings" if plural else "a mapping"
+    return "values" if plural else "a value"
+
+
+def _show(value: Any, limit: int = 60) -> str:
+    """A value as a reader of the YAML file would write it, shortened."""
+    if value is True or value is False:
+        text = "true" if value else "false"
+    elif value is None:
+        text = "null"
+    elif isinstance(value, (list, tuple)):
+        text = "[" + ", ".join(_show(v, limit) for v in value) + "]"
+    elif isinstance(value, dict):
+        text = "{" + ", ".join(f"{_show(k, limit)}: {_show(v, limit)}" for k, v in value.items()) + "}"
+    else:
+        text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _kind(value: Any) -> str:
+    return {list: "a list", str: "a string", int: "a number", float: "a number", bool: "true/false"}.get(
+        type(value), type(value).__name__
+    )
+
+
+def _section_fields() -> dict[str, list[str]]:
+    """Every key name of the top level and of each section, to the paths that have it."""
+    found: dict[str, list[str]] = {}
+    for name, field in Recipe.model_fields.items():
+        found.setdefault(name, []).append(name)
+        model = _model_of(field.annotation)
+        if model is not None:
+            for sub in model.model_fields:
+                found.setdefault(sub, []).append(f"{name}.{sub}")
+    return found
+
+
+def _unknown_key(path: tuple[Any, ...], in_file: bool) -> str:
+    model = _model_of(_follow(path[:-1])[1])
+    allowed = list(model.model_fields) if model is not None else []
+    if not path[:-1] and in_file:
+        allowed.append("extends")
+    key = path[-1]
+    msg = "unknown key"
+    if isinstance(key, str):  # (a key that is not a string is reported as invalid_key instead)
+        lowered = {a.lower(): a for a in allowed}
+        close = difflib.get_close_matches(key.lower(), list(lowered), n=1, cutoff=0.6)
+        here = ".".join(str(p) for p in path[:-1])
+        elsewhere = [p for p in _section_fields().get(key, []) if p.rpartition(".")[0] != here]
+        if close:
+            msg += f"; did you mean {lowered[close[0]]!r}?"
+        elif elsewhere:
+            msg += f"; did you mean {' or '.join(repr(p) for p in elsewhere)}?"
+    return f"{msg} (allowed: {', '.join(allowed)})" if allowed else msg
+
+
+_QUOTE_HINT = "quote it: YAML reads unquoted yes/no/on/off/true/false as booleans and digits as numbers"
+_RANGE = {"greater_than_equal": (">=", "ge"), "greater_than": (">", "gt"),
+          "less_than_equal": ("<=", "le"), "less_than": ("<", "lt")}
+_TYPE_ERRORS = {
+    "int_parsing", "int_type", "float_parsing", "float_type", "bool_parsing", "bool_type", "string_type",
+    "list_type", "tuple_type", "dict_type", "model_type", "model_attributes_type", "too_short", "too_long",
+    "string_too_short", "string_too_long", "int_parsing_size", "none_required",
+}
+
+
+def _problem(err: Any, data: Any, in_file: bool) -> tuple[tuple[Any, ...], str]:
+    """(location, message) for one pydantic error."""
+    kind = err["type"]
+    path, ann, at_union = _follow(tuple(err["loc"]))
+    got = err.get("input")
+    if at_union or (kind == "missing" and path and isinstance(path[-1], int)):
+        if kind == "missing":
+            path = path[:-1]
+            ann = _follow(path)[1]
+        got = _lookup(data, path)
+        shown = "" if got is _NOTHING else f" (got {_show(got)})"
+        return path, f"must be {_describe(ann)}{shown}"
+    if kind == "extra_forbidden":
+        return path, _unknown_key(path, in_file)
+    if kind == "invalid_key":  # pydantic puts the key into the location; True shows as 1 there
+        model = _model_of(_follow(path[:-1])[1])
+        allowed = f" (allowed: {', '.join(model.model_fields)})" if model is not None else ""
+        return path[:-1], f"key {_show(got)} is not a string; {_QUOTE_HINT}{allowed}"
+    if kind == "missing":
+        what = f": {_describe(ann)}" if ann is not None else ""
+        return path, f"required key is missing{what}"
+    if kind == "literal_error":
+        choices = list(typing.get_args(_strip_none(ann))) if ann is not None else []
+        allowed = ", ".join(_show(c) for c in choices) or err["ctx"]["expected"]
+        hint = ""
+        if isinstance(got, str):
+            close = difflib.get_close_matches(got, [str(c) for c in choices], n=1)
+            hint = f"; did you mean {close[0]!r}?" if close else ""
+        return path, f"must be one of {allowed} (got {_show(got)}{hint})"
+    if kind in _RANGE:
+        op, name = _RANGE[kind]
+        return path, f"must be {op} {err['ctx'][name]} (got {_show(got)})"
+    if kind == "int_from_float":
+        return path, f"must be a whole number (got {_show(got)})"
+    if kind == "finite_number":
+        return path, f"must be a finite number, not NaN or infinity (got {_show(got)})"
+    if kind in _TYPE_ERRORS:
+        what = _describe(ann) if ann is not None else err["msg"].replace("Input should be ", "")
+        msg = f"must be {what} (got {_show(got)})"
+        if kind == "string_type" and isinstance(got, (bool, int, float)):
+            msg += f"; {_QUOTE_HINT}"
+        return path, msg
+    msg = " ".join(err["msg"].split()).removeprefix("Value error, ").removeprefix("Assertion failed, ")
+    msg = msg.replace("Input should be", "must be")
+    if kind == "value_error":  # our validators say what they got; a section's input is the whole section
+        if "(got " not in msg and not isinstance(got, (dict, list, tuple)):
+            msg += f" (got {_show(got)})"
+    elif not isinstance(got, dict):
+        msg += f" (got {_show(got)})"
+    return path, msg
+
+
+def _explain(
+    exc: ValidationError,
+    origin: str,
+    *,
+    data: Any = None,
+    provenance: Provenance | None = None,
+    in_file: bool = False,
+) -> str:
     lines = [f"{origin}: invalid recipe"]
     for err in exc.errors():
-        loc = ".".join(str(p) for p in err["loc"]) or "(top level)"
-        msg = err["msg"]
-        if err["type"] == "extra_forbidden":
-            msg = "unknown key (check the spelling; `patchloom recipe show` lists every key)"
-        elif err["type"] == "literal_error":
-            msg = msg.replace("Input should be", "must be one of")
-        msg = msg.removeprefix("Value error, ")
-        got = err.get("input")
-        suffix = "" if err["type"] in ("extra_forbidden", "missing") or isinstance(got, dict) else f" (got {got!r})"
-        lines.append(f"  {loc}: {msg}{suffix}")
+        path, msg = _problem(err, data, in_file)
+        loc = ".".join(str(p) for p in path)
+        line = f"  {_where(path, provenance, origin)}{loc + ': ' if loc else ''}{msg}"
+        if line not in lines:
+            lines.append(line)
     return "\n".join(lines)
