@@ -13,6 +13,7 @@ from .pipeline import Ledger, Pipeline, SampleError, image_to_patches
 from .recipe import Recipe, RecipeError
 from .sizing import SizePlan, plan_size
 from .sources import SourceError, expand_shards
+from .store import read_packed
 
 __version__ = "0.1.0"
 
@@ -33,5 +34,6 @@ __all__ = [
     "pack",
     "patchify",
     "plan_size",
+    "read_packed",
     "unpatchify",
 ]

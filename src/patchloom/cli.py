@@ -1,4 +1,4 @@
-"""The `patchloom` command: demo, run, bench, and recipe check/show.
+"""The `patchloom` command: demo, run, bench, pack, verify, and recipe check/show.
 
 Exit status is 0 only on success; recipe and input errors print one clear message (no traceback).
 """
@@ -16,6 +16,7 @@ from tqdm import tqdm
 from .pipeline import Pipeline, SampleError
 from .recipe import Recipe, RecipeError
 from .sources import SourceError
+from .store import add_store_commands
 from .summary import RunStats, format_table
 
 #: The recipe `patchloom demo` runs: native aspect ratio under a 256-token budget, shuffled.
@@ -162,6 +163,7 @@ def build_parser() -> argparse.ArgumentParser:
     rec.add_argument("action", choices=["check", "show"])
     rec.add_argument("file")
     rec.set_defaults(func=cmd_recipe)
+    add_store_commands(sub)
     return parser
 
 
