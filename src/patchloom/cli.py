@@ -1,4 +1,4 @@
-"""The `patchloom` command: demo, run, bench, pack, verify, and recipe check/show.
+"""The `patchloom` command: demo, run, bench, pack, verify, inspect, and recipe check/show.
 
 Exit status is 0 only on success; recipe and input errors print one clear message (no traceback).
 """
@@ -16,6 +16,7 @@ from tqdm import tqdm
 from .pipeline import Pipeline, SampleError
 from .recipe import Recipe, RecipeError
 from .sources import SourceError
+from .report import add_inspect_command
 from .store import add_store_commands
 from .summary import RunStats, format_table
 
@@ -164,6 +165,7 @@ def build_parser() -> argparse.ArgumentParser:
     rec.add_argument("file")
     rec.set_defaults(func=cmd_recipe)
     add_store_commands(sub)
+    add_inspect_command(sub)
     return parser
 
 
