@@ -9,7 +9,7 @@ from .batch import PackedBatch
 from .decode import DecodeError
 from .packing import Packer, pack
 from .patches import PatchSet, patchify, unpatchify
-from .pipeline import Ledger, Pipeline, SampleError, image_to_patches
+from .pipeline import Ledger, Pipeline, SampleError, SkipRatioError, image_to_patches
 from .recipe import Recipe, RecipeError
 from .sizing import SizePlan, plan_size
 from .sources import SourceError, expand_shards
@@ -28,6 +28,7 @@ __all__ = [
     "RecipeError",
     "SampleError",
     "SizePlan",
+    "SkipRatioError",
     "SourceError",
     "expand_shards",
     "image_to_patches",

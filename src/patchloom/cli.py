@@ -13,7 +13,7 @@ from pathlib import Path
 
 from tqdm import tqdm
 
-from .pipeline import Pipeline, SampleError
+from .pipeline import Pipeline, SampleError, SkipRatioError
 from .recipe import Recipe, RecipeError
 from .sources import SourceError
 from .report import add_inspect_command
@@ -31,7 +31,8 @@ DEMO_RECIPE = {
 
 
 def _stream(recipe: Recipe, *, shards, epoch: int, rank: int, world_size: int, max_batches: int | None,
-            progress: bool, title: str, allow_shell: bool = False) -> tuple[RunStats, dict]:
+            progress: bool, title: str, allow_shell: bool = False,
+            ledger_path: str | None = None) -> tuple[RunStats, dict]:
     pipe = Pipeline(recipe, shards=shards, rank=rank, world_size=world_size, epoch=epoch, allow_shell=allow_shell)
     stats = RunStats()
     bar = tqdm(desc="packing", unit=" img", disable=not progress, file=sys.stderr, dynamic_ncols=True)
@@ -44,6 +45,8 @@ def _stream(recipe: Recipe, *, shards, epoch: int, rank: int, world_size: int, m
                 break
     finally:
         bar.close()
+        if ledger_path:
+            pipe.ledger.write_jsonl(ledger_path)
     ledger = pipe.ledger.to_dict()
     print(format_table(stats, ledger, title=title))
     return stats, ledger
@@ -67,6 +70,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     stats, ledger = _stream(
         recipe, shards=args.shards, epoch=args.epoch, rank=args.rank, world_size=args.world_size,
         max_batches=args.max_batches, progress=not args.no_progress, allow_shell=args.allow_shell,
+        ledger_path=args.ledger,
         title=f"patchloom run {args.recipe}  (recipe {recipe.fingerprint()[:12]})",
     )
     if args.json:
@@ -141,6 +145,8 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--world-size", type=int, default=1)
     run.add_argument("--max-batches", type=int, help="stop after this many batches")
     run.add_argument("--json", metavar="FILE", help="also write the summary and ledger as JSON")
+    run.add_argument("--ledger", metavar="FILE",
+                     help="write every skipped sample as JSON lines (a quarantine list), then a summary line")
     run.add_argument("--allow-shell", action="store_true",
                      help="allow pipe: shard URLs, which run shell commands (only for shard lists you wrote)")
     run.add_argument("--no-progress", action="store_true", help="no progress bar")
@@ -175,7 +181,7 @@ def main(argv: list[str] | None = None) -> int:
         with warnings.catch_warnings():
             warnings.simplefilter("default")
             return args.func(args)
-    except (RecipeError, SourceError, SampleError) as err:
+    except (RecipeError, SourceError, SampleError, SkipRatioError) as err:
         print(f"patchloom: error: {err}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:

@@ -7,6 +7,9 @@ not depend on worker count, order or resume point.
 
 from __future__ import annotations
 
+import json
+import logging
+import time
 from collections import Counter
 from collections.abc import Iterator
 from dataclasses import dataclass, field
@@ -17,11 +20,11 @@ from .batch import PackedBatch
 from .packing import Packer
 from .patches import PatchSet
 from .recipe import Recipe
-from .sample import SampleError, image_to_patches, process_record
+from .sample import SampleError, SkipRatioError, image_to_patches, process_record
 from .seeding import stream_rng
 from .sources import Record, ReaderCursor, ShuffleBuffer, expand_shards, fetch_records, reader_tasks
 
-__all__ = ["Ledger", "Pipeline", "SampleError", "Skip", "image_to_patches"]
+__all__ = ["Ledger", "Pipeline", "SampleError", "Skip", "SkipRatioError", "image_to_patches"]
 
 
 @dataclass(slots=True)
@@ -73,6 +76,15 @@ class Ledger:
             "repeated": self.repeated,
         }
 
+    def write_jsonl(self, path: str) -> None:
+        """One JSON line per skipped sample (a quarantine list), then one summary line."""
+        with open(path, "w", encoding="utf-8") as f:
+            for s in self.skipped:
+                f.write(json.dumps({"shard": s.shard, "key": s.key, "stage": s.stage, "reason": s.reason}) + "\n")
+            for s in self.shard_errors:
+                f.write(json.dumps({"shard": s.shard, "key": None, "stage": s.stage, "reason": s.reason}) + "\n")
+            f.write(json.dumps({"summary": self.to_dict()}) + "\n")
+
     def state_dict(self) -> dict[str, Any]:
         """Everything, as JSON-able data (for resume)."""
         return {
@@ -97,6 +109,31 @@ def _gist(reason: str) -> str:
 
 
 STATE_VERSION = 1
+SKIP_RATIO_MIN_READ = 100
+log = logging.getLogger("patchloom")
+
+
+class _SkipLog:
+    """Rate-limited warnings for skipped samples: the first few in full, then one summary line at
+    most every `every` seconds (never sleeps)."""
+
+    def __init__(self, first: int = 5, every: float = 30.0) -> None:
+        self.first, self.every = first, every
+        self.count = 0
+        self.last = 0.0
+        self.quiet = 0
+
+    def skip(self, s: Skip) -> None:
+        self.count += 1
+        if self.count <= self.first:
+            log.warning("skipped shard %s, key %r, stage %s: %s", s.shard, s.key, s.stage, s.reason)
+            return
+        self.quiet += 1
+        now = time.monotonic()
+        if now - self.last >= self.every:
+            log.warning("%d more samples skipped (latest: key %r, stage %s); see pipeline.ledger",
+                        self.quiet, s.key, s.stage)
+            self.last, self.quiet = now, 0
 
 
 def reader_share(total: int | None, worker: int, num_workers: int) -> int | None:
@@ -140,6 +177,7 @@ class Pipeline:
         self.ledger = Ledger()
         self._batches = 0
         self._resume: dict[str, Any] | None = None
+        self._log = _SkipLog()
         self._cursor: ReaderCursor | None = None
         self._packer: Packer | None = None
         self._shuffle: ShuffleBuffer | None = None
@@ -219,7 +257,30 @@ class Pipeline:
             except SampleError as err:
                 if r.source.on_error == "raise":
                     raise
-                self.ledger.skipped.append(Skip(err.shard, err.key, err.stage, err.cause))
+                self._skip(Skip(err.shard, err.key, err.stage, err.cause))
+        self._check_skip_ratio()
+
+    def _skip(self, entry: Skip) -> None:
+        self.ledger.skipped.append(entry)
+        self._log.skip(entry)
+        self._check_skip_ratio()
+
+    def _check_skip_ratio(self) -> None:
+        """Past source.max_skip_ratio even `skip` raises, so a broken shard list cannot train quietly
+        on part of the data. Judged after each skip and at the end of the stream, once at least
+        SKIP_RATIO_MIN_READ samples are read (a ratio of a handful says little)."""
+        limit = self.recipe.source.max_skip_ratio
+        led = self.ledger
+        if limit is None or led.read < SKIP_RATIO_MIN_READ:
+            return
+        ratio = len(led.skipped) / led.read
+        if ratio > limit:
+            reasons = ", ".join(f"{n} x {k}" for k, n in sorted(led.reasons().items(), key=lambda kv: -kv[1]))
+            raise SkipRatioError(
+                f"{len(led.skipped)} of {led.read} samples skipped ({100 * ratio:.1f} %), over "
+                f"source.max_skip_ratio={limit}: {reasons}. Fix the shards, or raise max_skip_ratio "
+                "(null turns the check off) if this is expected"
+            )
 
     def __iter__(self) -> Iterator[PackedBatch]:
         self._setup()

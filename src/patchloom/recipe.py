@@ -55,6 +55,8 @@ class SourceConfig(_Section):
     shuffle_shards: bool = True
     shuffle_buffer: int = Field(default=0, ge=0)
     on_error: Literal["skip", "raise"] = "skip"
+    max_skip_ratio: float | None = Field(default=0.05, ge=0.0, le=1.0)
+    max_sample_bytes: int = Field(default=100_000_000, ge=1)
 
 
 class DecodeConfig(_Section):

@@ -27,9 +27,16 @@ from .sources import Record
 class SampleError(RuntimeError):
     """One sample failed; the message names the shard, the key, the stage and the cause."""
 
-    def __init__(self, shard: str, key: str, stage: str, cause: str) -> None:
-        super().__init__(f"shard {shard}, key {key!r}, stage {stage}: {cause}")
+    def __init__(self, shard: str = "", key: str = "", stage: str = "", cause: str = "", *,
+                 message: str | None = None) -> None:
+        # `message` alone rebuilds the error from its text (as torch does when a DataLoader worker
+        # raised it), so the main process sees the same message.
+        super().__init__(message if message is not None else f"shard {shard}, key {key!r}, stage {stage}: {cause}")
         self.shard, self.key, self.stage, self.cause = shard, key, stage, cause
+
+
+class SkipRatioError(RuntimeError):
+    """Too many samples were skipped: a broken shard list should not train quietly on part of the data."""
 
 
 class _Stage:
@@ -178,6 +185,12 @@ def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, 
     stage = _Stage()
     seed, key = recipe.seed, rec.key
     try:
+        size = sum(len(v) for v in rec.members.values())
+        if size > recipe.source.max_sample_bytes:
+            raise ValueError(
+                f"sample is {size} bytes, over source.max_sample_bytes={recipe.source.max_sample_bytes}; "
+                "raise it in the recipe if such samples are expected"
+            )
         ext, data = find_image(rec, recipe.source.image_keys)
         label = parse_label(rec, recipe.source.label_key)
         stage.name = "decode"
