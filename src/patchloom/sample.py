@@ -79,10 +79,14 @@ def parse_label(rec: Record, label_key: str | None) -> int | None:
     if ext not in rec.members:
         return None
     raw = rec.members[ext]
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise ValueError(f"label member {ext!r} is not UTF-8 text (first bytes {raw[:8].hex(' ')})") from None
     if json_field:
-        value = json.loads(raw.decode("utf-8")).get(json_field)
+        value = json.loads(text).get(json_field)
     else:
-        value = raw.decode("utf-8").strip()
+        value = text.strip()
     if value is None or value == "":
         return None
     try:
@@ -185,6 +189,9 @@ def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, 
     stage = _Stage()
     seed, key = recipe.seed, rec.key
     try:
+        if rec.error is not None:
+            stage.name = "read"
+            raise ValueError(rec.error)
         size = sum(len(v) for v in rec.members.values())
         if size > recipe.source.max_sample_bytes:
             raise ValueError(

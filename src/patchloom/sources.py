@@ -31,6 +31,7 @@ class Record:
     url: str
     index: int
     members: dict[str, bytes]
+    error: str | None = None  # set when the shard broke off inside this sample: it is skipped, not lost
 
 
 @dataclass(slots=True, frozen=True)
@@ -159,19 +160,43 @@ def read_shard(
                 chosen.append((key, i))
         return last["keep"]
 
+    failure: dict[str, object] = {}
+
+    def guarded(files: Iterator[dict]) -> Iterator[dict]:
+        # A read error ends the member stream cleanly, so the grouping step still hands over the
+        # sample it holds; the error is re-raised below, after that sample is dealt with.
+        try:
+            yield from files
+        except Exception as exc:  # tar or I/O failure
+            failure.update(exc=exc, key=last["key"], index=last["index"], keep=last["keep"])
+
     stream = open_shard(task.url, allow_shell=allow_shell)
     try:
-        files = tar_file_iterator(stream, select_files=select)
+        files = guarded(tar_file_iterator(stream, select_files=select))
         files = ({**f, "__url__": task.url} for f in files)
+        held: Record | None = None
         for sample in group_by_keys(files):
             key = sample["__key__"]
             while chosen and chosen[0][0] != key:  # a selected sample whose files all failed
                 chosen.popleft()
             _, index = chosen.popleft()
             members = {k: v for k, v in sample.items() if not k.startswith("__")}
-            yield Record(key=key, url=task.url, index=index, members=members)
+            if held is not None:
+                yield held
+            held = Record(key=key, url=task.url, index=index, members=members)
             if wanted is not None and index >= max(wanted):
-                return
+                break
+        broken = f"shard broke off inside this sample ({failure.get('exc')})"
+        if held is not None:
+            if failure and failure["key"] == held.key:
+                # The break came while this sample was being read: it may be missing members.
+                held = Record(held.key, held.url, held.index, {}, error=broken)
+            yield held
+        if failure and failure["keep"] and failure["key"] != (held.key if held else None):
+            # The sample being read when the shard broke off: skipped with a reason, never lost.
+            yield Record(str(failure["key"]), task.url, int(failure["index"]), {}, error=broken)  # type: ignore[arg-type]
+        if failure:
+            raise failure["exc"]  # type: ignore[misc]
     finally:
         stream.close()
 
