@@ -110,3 +110,24 @@ def test_packer_rejects_oversized_image_with_advice():
 def test_mixed_patch_dims_are_an_error():
     with pytest.raises(ValueError, match="patch dimension"):
         pack([ps(2, "a", d=12), ps(2, "b", d=48)], seq_len=8)
+
+
+def test_small_buffer_waits_for_a_batch_worth_of_tokens():
+    """A buffer smaller than a batch's capacity must not emit half-empty batches."""
+    packer = Packer(seq_len=10, rows=4, max_images_per_row=2, buffer=2)
+    out = []
+    for i in range(8):
+        out += packer.push(ps(5, f"k{i}"))
+    assert len(out) == 1 and out[0].num_tokens == 40  # 8 images of 5 fill 4 rows of 10 exactly
+    assert not packer.pending
+
+
+def test_packing_bench_reports_each_algorithm_and_buffer():
+    from patchloom import Recipe
+    from patchloom.bench_packing import bench_packing
+
+    res = bench_packing(Recipe.from_dict({"sizing": {"max_tokens": 64}, "packing": {"seq_len": 256, "rows": 2}}),
+                        images=300, buffers=(4, 32))
+    assert {(r["algorithm"], r["buffer"]) for r in res["results"]} == {
+        (a, b) for a in ("first_fit", "best_fit", "in_order") for b in (4, 32)}
+    assert all(0 <= r["padding_pct"] < 50 for r in res["results"])

@@ -92,6 +92,14 @@ def cmd_bench(args: argparse.Namespace) -> int:
     spec = shards if shards is not None else recipe.source.shards
     if ensure_demo_shards(spec, demo_dir=args.data, progress=progress):
         print(f"made demo shards in {args.data}", file=sys.stderr)
+    if args.packing:
+        from .bench_packing import bench_packing, format_packing_bench
+
+        result = bench_packing(recipe)
+        print(format_packing_bench(result))
+        if args.json:
+            Path(args.json).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
+        return 0
     if args.resume:
         from .bench_resume import bench_resume, format_resume_bench
 
@@ -161,6 +169,8 @@ def build_parser() -> argparse.ArgumentParser:
     bench.add_argument("--data", default="patchloom-demo", help="where demo shards are made if needed")
     bench.add_argument("--drop-modes", action="store_true",
                        help="instead: cost per image and realised rate of every token-drop mode")
+    bench.add_argument("--packing", action="store_true",
+                       help="instead: padding and cost of each packing algorithm and buffer size")
     bench.add_argument("--resume", action="store_true",
                        help="instead: cost of state_dict() and of resuming mid-epoch")
     bench.add_argument("--no-progress", action="store_true", help="no progress bars")

@@ -160,8 +160,10 @@ def pack(
 class Packer:
     """Streaming packer: fills `rows` rows of `seq_len` tokens from a look-ahead buffer.
 
-    Push PatchSets; whenever `buffer` images are waiting, one batch is assembled and the images that
-    did not fit stay for the next one (never dropped). `flush()` empties the buffer at the end of
+    Push PatchSets; once at least `buffer` images are waiting and their tokens could fill a whole
+    batch, one batch is assembled and the images that did not fit stay for the next one (never
+    dropped). Waiting for a batch's worth of tokens keeps a small buffer from emitting half-empty
+    batches; the look-ahead is bounded by max(buffer, a batch's worth of images). `flush()` empties the buffer at the end of
     the stream; every batch has the same [rows, seq_len] shape.
     """
 
@@ -183,6 +185,10 @@ class Packer:
         self.algorithm = algorithm
         self.pending: list[PatchSet] = []
 
+    @property
+    def pending_tokens(self) -> int:
+        return sum(p.num_tokens for p in self.pending)
+
     def push(self, item: PatchSet) -> list[PackedBatch]:
         """Add one image; returns the batches that became ready (zero or one)."""
         if item.num_tokens > self.seq_len:
@@ -191,7 +197,7 @@ class Packer:
                 "lower sizing.max_tokens or raise packing.seq_len"
             )
         self.pending.append(item)
-        if len(self.pending) >= self.buffer:
+        if len(self.pending) >= self.buffer and self.pending_tokens >= self.rows * self.seq_len:
             return [self._assemble()]
         return []
 
