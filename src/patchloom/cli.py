@@ -96,28 +96,22 @@ def cmd_bench(args: argparse.Namespace) -> int:
         from .bench_packing import bench_packing, format_packing_bench
 
         result = bench_packing(recipe)
-        print(format_packing_bench(result))
-        if args.json:
-            Path(args.json).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
-        return 0
-    if args.resume:
+        text = format_packing_bench(result)
+    elif args.resume:
         from .bench_resume import bench_resume, format_resume_bench
 
         result = bench_resume(recipe, shards=shards)
-        print(format_resume_bench(result))
-        if args.json:
-            Path(args.json).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
-        return 0
-    if args.drop_modes:
+        text = format_resume_bench(result)
+    elif args.drop_modes:
         from .bench_drops import bench_drop_modes, format_drop_bench
 
         result = bench_drop_modes(recipe, shards=shards, max_images=args.max_images or 200, repeats=args.repeats)
-        print(format_drop_bench(result))
-        if args.json:
-            Path(args.json).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
-        return 0
-    result = run_bench(recipe, shards=shards, max_images=args.max_images, repeats=args.repeats, progress=progress)
-    print(format_bench(result))
+        text = format_drop_bench(result)
+    else:
+        result = run_bench(recipe, shards=shards, max_images=args.max_images, repeats=args.repeats,
+                           progress=progress)
+        text = format_bench(result)
+    print(text)
     if args.json:
         Path(args.json).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")
     return 0
