@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from PIL import Image, ImageCms, ImageFile
 
-from patchloom.decode import DecodeError, OpenedImage, decode_rgb, open_image, to_rgb
+from patchloom.decode import DecodeError, OpenedImage, dct_scale, decode_rgb, open_image, to_rgb
 
 # ----------------------------------------------------------------------------- builders
 
@@ -638,21 +638,33 @@ def test_unreadable_profile_is_ignored():
 # ----------------------------------------------------------------------------- reduce_to
 
 
-def test_reduce_to_uses_jpeg_draft_but_never_goes_below():
+def test_reduce_to_stays_at_least_twice_the_plan():
     data = _encode(Image.fromarray(np.kron(_block_image(), np.ones((4, 4, 1), np.uint8))), "JPEG")  # 64x96
     full = open_image(data, pixel_limit=10_000).decode()
     assert full.size == (64, 96)
-    small = open_image(data, pixel_limit=10_000).decode(reduce_to=(16, 24))
-    assert small.size == (16, 24)
-    odd = open_image(data, pixel_limit=10_000).decode(reduce_to=(20, 25))
-    assert odd.size[0] >= 20 and odd.size[1] >= 25 and odd.size[0] < 64
-    big = open_image(data, pixel_limit=10_000).decode(reduce_to=(100, 200))
+    small = open_image(data, pixel_limit=10_000).decode(reduce_to=(8, 12))
+    assert small.size == (16, 24)  # 1/4: 16 >= 2 * 8; 1/8 would be 8 < 2 * 8
+    half = open_image(data, pixel_limit=10_000).decode(reduce_to=(16, 24))
+    assert half.size == (32, 48)
+    odd = open_image(data, pixel_limit=10_000).decode(reduce_to=(10, 13))
+    assert odd.size[0] >= 20 and odd.size[1] >= 26 and odd.size[0] < 64
+    big = open_image(data, pixel_limit=10_000).decode(reduce_to=(40, 60))  # 2x would be over the image
     assert big.size == (64, 96)
+
+
+def test_dct_scale_is_a_power_of_two_keeping_the_margin():
+    assert dct_scale((4000, 3000), (224, 160)) == 8  # 500x375 >= 448x320
+    assert dct_scale((4000, 3000), (300, 200)) == 4  # 1/8 gives 500 < 600
+    assert dct_scale((500, 430), (224, 192)) == 1  # typical web image at 196 tokens: full decode
+    assert dct_scale((1000, 1000), (250, 250), margin=1) == 4
+    assert dct_scale((17, 9), (1, 1)) == 1  # 1/8 and 1/4 round unevenly (3x2, 5x3); 1/2 -> 9x5 also uneven
+    with pytest.raises(ValueError, match="positive"):
+        dct_scale((10, 10), (0, 5))
 
 
 def test_reduce_to_keeps_the_aspect_of_small_images():
     data = _encode(Image.new("RGB", (17, 9), (50, 60, 70)), "JPEG")  # / 8 would round to 3x2
-    out = open_image(data, pixel_limit=1_000).decode(reduce_to=(2, 1))
+    out = open_image(data, pixel_limit=1_000).decode(reduce_to=(1, 1))
     assert out.size == (17, 9)
 
 
@@ -661,9 +673,9 @@ def test_reduce_to_is_in_display_orientation():
     data = _with_orientation(img, "JPEG", 6)
     opened = open_image(data, pixel_limit=10_000)
     assert (opened.width, opened.height) == (96, 64)
-    out = opened.decode(reduce_to=(48, 32))
+    out = opened.decode(reduce_to=(24, 16))
     assert out.size == (48, 32)
-    out = open_image(data, pixel_limit=10_000).decode(reduce_to=(90, 20))  # 90 > 96 / 2: no draft
+    out = open_image(data, pixel_limit=10_000).decode(reduce_to=(45, 10))  # 2 * 45 > 96 / 2: no reduction
     assert out.size == (96, 64)
 
 

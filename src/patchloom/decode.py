@@ -5,16 +5,26 @@ is decoded and the sizing stage can plan from the display size. `OpenedImage.dec
 applies the EXIF orientation, converts any Pillow mode to RGB (16-bit data scaled, alpha composited
 on a background, embedded ICC profiles converted to sRGB) and returns a PIL image.
 
+Two decoders share one contract. Baseline and progressive JPEGs in RGB or grey, with no colour
+profile other than sRGB, are decoded by libjpeg-turbo through simplejpeg, which returns numpy
+pixels directly and scales in the DCT (1/2, 1/4, 1/8) faster than Pillow's draft mode; everything
+else (PNG, WebP, CMYK and Adobe JPEGs, non-sRGB ICC profiles, any JPEG simplejpeg refuses) goes
+through Pillow. Both paths pick the same DCT scale (the smallest power of two that keeps the decoded
+size at least twice the planned size), apply the same EXIF orientation, and give pixels within
+rounding of each other; `decode_path_counts()` says which path each decode took.
+
 Nothing here touches Pillow's process-wide settings (`Image.MAX_IMAGE_PIXELS`,
 `ImageFile.LOAD_TRUNCATED_IMAGES`): the pixel limit is per call.
 """
 
 from __future__ import annotations
 
+import functools
 import io
 import re
 import warnings
-from dataclasses import dataclass
+from collections import Counter
+from dataclasses import dataclass, field
 
 import numpy as np
 from PIL import Image
@@ -24,7 +34,36 @@ try:  # littlecms support is optional in Pillow builds; without it ICC profiles 
 except ImportError:  # pragma: no cover - depends on the Pillow build
     ImageCms = None  # type: ignore[assignment]
 
-__all__ = ["FORMATS", "DecodeError", "OpenedImage", "decode_rgb", "open_image", "to_rgb"]
+try:  # libjpeg-turbo binding; without it every JPEG takes the Pillow path.
+    import simplejpeg
+except ImportError:  # pragma: no cover - a platform without a wheel
+    simplejpeg = None  # type: ignore[assignment]
+
+__all__ = [
+    "DCT_SCALES",
+    "FORMATS",
+    "REDUCE_MARGIN",
+    "DecodeError",
+    "OpenedImage",
+    "dct_scale",
+    "decode_path_counts",
+    "decode_rgb",
+    "open_image",
+    "reset_decode_path_counts",
+    "to_rgb",
+]
+
+#: The JPEG DCT scalings we use: powers of two only. libjpeg-turbo also offers n/8 factors, which
+#: cost more than a full decode on typical images and look worse.
+DCT_SCALES: tuple[int, ...] = (8, 4, 2)
+
+#: A reduced decode must stay at least this many times the planned size on both sides, so the
+#: antialiased resize that follows has real detail to average (at 1x the result visibly softens).
+REDUCE_MARGIN = 2
+
+# How many decodes took each path in this process: "simplejpeg", "pillow". Tests and benchmarks
+# read it through decode_path_counts(); it is never used to make decisions.
+_PATHS: Counter[str] = Counter()
 
 #: Formats Pillow may try on our bytes. Keeping the list short means Pillow never runs plugins we
 #: have no use for on untrusted data. Multi-picture JPEGs from phones come through "JPEG" and
@@ -64,6 +103,7 @@ class OpenedImage:
     width: int
     height: int
     orientation: int
+    data: bytes = field(default=b"", repr=False)  # the encoded bytes, for the libjpeg-turbo path
 
     def decode(
         self,
@@ -79,8 +119,20 @@ class OpenedImage:
         formats ignore it. Call once: the underlying Pillow image is consumed.
         """
         img = self.image
-        if reduce_to is not None:
-            _draft(img, reduce_to, self.orientation)
+        scale = 1
+        if reduce_to is not None and img.format in ("JPEG", "MPO"):
+            scale = dct_scale(img.size, _stored(reduce_to, self.orientation))
+        fast = self._decode_fast(scale) if self.data else None
+        if fast is not None:
+            _PATHS["simplejpeg"] += 1
+            img.close()
+            rgb = Image.fromarray(fast)
+            method = _TRANSPOSE.get(self.orientation)
+            return rgb if method is None else rgb.transpose(method)
+        _PATHS["pillow"] += 1
+        if scale > 1:
+            w, h = img.size
+            img.draft(None, (max(1, w // scale), max(1, h // scale)))  # Pillow then picks exactly `scale`
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", Image.DecompressionBombWarning)
             try:
@@ -94,6 +146,85 @@ class OpenedImage:
             return rgb
         method = _TRANSPOSE.get(self.orientation)
         return rgb if method is None else rgb.transpose(method)
+
+
+    def _decode_fast(self, scale: int) -> np.ndarray | None:
+        """Stored-orientation RGB pixels from libjpeg-turbo at 1/scale, or None to use Pillow.
+
+        Only plain JPEGs qualify: format JPEG (not MPO), mode RGB or L (so not CMYK/YCCK or Adobe
+        inverted data), no colour profile unless it is sRGB. Any error or surprise (truncated
+        data, an unexpected output size) returns None, so Pillow decides and words the error.
+        """
+        img = self.image
+        if simplejpeg is None or img.format != "JPEG" or img.mode not in ("RGB", "L"):
+            return None
+        if "adobe" in img.info or not _is_srgb(img.info.get("icc_profile")):
+            return None
+        w, h = img.size
+        out_w, out_h = -(-w // scale), -(-h // scale)
+        try:
+            pixels = simplejpeg.decode_jpeg(self.data, "RGB", min_height=out_h, min_width=out_w, strict=True)
+        except (ValueError, RuntimeError, OSError):
+            return None
+        if pixels.shape != (out_h, out_w, 3):
+            return None
+        return pixels
+
+
+def decode_path_counts() -> dict[str, int]:
+    """How many decodes took each path ("simplejpeg", "pillow") in this process so far."""
+    return dict(_PATHS)
+
+
+def reset_decode_path_counts() -> None:
+    """Zero the counters of decode_path_counts()."""
+    _PATHS.clear()
+
+
+def dct_scale(stored: tuple[int, int], want: tuple[int, int], margin: int = REDUCE_MARGIN) -> int:
+    """The JPEG DCT scale (1, 2, 4 or 8) to decode a `stored` (w, h) image for a `want` (w, h) plan.
+
+    The largest power of two that keeps the decoded size (rounded up, as libjpeg does) at least
+    `margin` times `want` on both sides, and whose rounding scales both axes alike within 1 %
+    (later stages map header coordinates by one ratio). 1 means a full decode.
+    """
+    w, h = int(stored[0]), int(stored[1])
+    want_w, want_h = int(want[0]), int(want[1])
+    if want_w < 1 or want_h < 1:
+        raise ValueError(f"reduce_to must be two positive sizes (got {want!r})")
+    for scale in DCT_SCALES:
+        out_w, out_h = -(-w // scale), -(-h // scale)
+        if out_w < margin * want_w or out_h < margin * want_h:
+            continue
+        # Rounding up can stretch one axis more than the other on small images (17x9 / 8 -> 3x2).
+        if abs(out_w / w - out_h / h) <= 0.01 * max(out_w / w, out_h / h):
+            return scale
+    return 1
+
+
+def _stored(size: tuple[int, int], orientation: int) -> tuple[int, int]:
+    """A display-orientation (w, h) as the decoder sees it (swapped for the 90-degree orientations)."""
+    w, h = int(size[0]), int(size[1])
+    return (h, w) if orientation >= 5 else (w, h)
+
+
+@functools.lru_cache(maxsize=64)
+def _srgb_profile(icc: bytes) -> bool:
+    if ImageCms is None:
+        return False
+    try:
+        profile = ImageCms.ImageCmsProfile(io.BytesIO(icc))
+        return (profile.profile.xcolor_space.strip().upper() == "RGB"
+                and "SRGB" in ImageCms.getProfileDescription(profile).upper())
+    except (ImageCms.PyCMSError, OSError, ValueError, TypeError):
+        return False
+
+
+def _is_srgb(icc: bytes | None) -> bool:
+    """True for no profile or an sRGB one (the fast path may skip colour management for these)."""
+    if not icc:
+        return True
+    return _srgb_profile(bytes(icc))
 
 
 def open_image(data: bytes, *, pixel_limit: int) -> OpenedImage:
@@ -146,6 +277,7 @@ def open_image(data: bytes, *, pixel_limit: int) -> OpenedImage:
         width=width,
         height=height,
         orientation=orientation,
+        data=data,
     )
 
 
@@ -215,31 +347,6 @@ def _pillow_applied_orientation(img: Image.Image) -> bool:
     """True when Pillow already transposed the pixels on load (its TIFF reader does, then drops the tag)."""
     tags = getattr(img, "tag_v2", None) if img.format == "TIFF" else None
     return tags is not None and _ORIENTATION_TAG not in tags
-
-
-def _draft(img: Image.Image, reduce_to: tuple[int, int], orientation: int) -> None:
-    """Ask the JPEG decoder for a 1/2, 1/4 or 1/8 scale that stays >= `reduce_to`."""
-    want_w, want_h = (int(reduce_to[0]), int(reduce_to[1]))
-    if want_w < 1 or want_h < 1:
-        raise ValueError(f"reduce_to must be two positive sizes (got {reduce_to!r})")
-    if img.format not in ("JPEG", "MPO"):
-        return
-    if orientation >= 5:  # reduce_to is in display orientation, the decoder works in stored
-        want_w, want_h = want_h, want_w
-    w, h = img.size
-    if w < want_w or h < want_h:
-        return
-    # Pillow's JPEG draft picks scale = largest of 8/4/2/1 not above min(w // want_w, h // want_h)
-    # and rounds the result up, so it never goes below the request; check that anyway.
-    scale = next(s for s in (8, 4, 2, 1) if s <= min(w // want_w, h // want_h))
-    out_w, out_h = -(-w // scale), -(-h // scale)
-    if scale == 1 or out_w < want_w or out_h < want_h:
-        return
-    # Rounding up can stretch one axis more than the other on small images (17x9 / 8 -> 3x2);
-    # later stages map header coordinates by the size ratio, so only accept a near-uniform scale.
-    if abs(out_w / w - out_h / h) > 0.01 * max(out_w / w, out_h / h):
-        return
-    img.draft(None, (want_w, want_h))
 
 
 def _pixel_error(exc: Exception, opened: OpenedImage) -> DecodeError:
