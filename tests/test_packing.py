@@ -85,7 +85,7 @@ def test_packer_never_drops_and_keeps_shape():
         # Held items are exactly those not yet emitted.
         emitted = sum(b.num_images for b in batches)
         assert emitted + len(packer.pending) == n_pushed
-    batches += packer.flush()
+    batches += list(packer.flush())
     keys = [k for b in batches for row in b.keys for k in row]
     assert sorted(keys) == sorted(p.key for p in items)
     assert {b.patches.shape for b in batches} == {(3, 32, 12)}
@@ -129,5 +129,55 @@ def test_packing_bench_reports_each_algorithm_and_buffer():
     res = bench_packing(Recipe.from_dict({"sizing": {"max_tokens": 64}, "packing": {"seq_len": 256, "rows": 2}}),
                         images=300, buffers=(4, 32))
     assert {(r["algorithm"], r["buffer"]) for r in res["results"]} == {
-        (a, b) for a in ("first_fit", "best_fit", "in_order") for b in (4, 32)}
+        (a, b) for a in ("largest_first", "first_fit", "best_fit", "in_order") for b in (4, 32)}
     assert all(0 <= r["padding_pct"] < 50 for r in res["results"])
+
+
+# ----------------------------------------------------------------------------- largest_first
+
+
+def test_largest_first_places_big_items_first_and_fills_gaps_with_small():
+    sizes = [4, 7, 3, 6]
+    rows, left = assign_rows(sizes, seq_len=10, rows=2, algorithm="largest_first")
+    assert rows == [[1, 2], [3, 0]]  # 7+3 and 6+4: both rows exactly full
+    assert left == []
+    ff_rows, ff_left = assign_rows(sizes, seq_len=10, rows=2, algorithm="first_fit")
+    assert ff_left  # arrival order strands an item here
+    assert sum(sizes[i] for r in rows for i in r) > sum(sizes[i] for r in ff_rows for i in r)
+
+
+def _stream_padding_and_waits(algorithm: str, seed: int = 0) -> tuple[float, int]:
+    rng = np.random.default_rng(seed)
+    packer = Packer(seq_len=256, rows=4, max_images_per_row=16, buffer=32, algorithm=algorithm)
+    arrived: dict[str, int] = {}
+    real = slots = worst = 0
+    for i, n in enumerate(rng.integers(8, 120, size=3000)):
+        key = f"k{i}"
+        arrived[key] = packer.emitted
+        for batch in packer.push(ps(int(n), key)):
+            real += batch.num_tokens
+            slots += batch.segment_ids.size
+            worst = max(worst, max(packer.emitted - 1 - arrived[k] for row in batch.keys for k in row))
+    return 1 - real / slots, worst
+
+
+def test_largest_first_pads_less_than_first_fit_and_caps_the_wait():
+    from patchloom.packing import MAX_WAIT_BATCHES
+
+    pad_lf, wait_lf = _stream_padding_and_waits("largest_first")
+    pad_ff, _ = _stream_padding_and_waits("first_fit")
+    assert pad_lf < pad_ff
+    assert wait_lf <= MAX_WAIT_BATCHES + 1
+
+
+def test_packer_restore_keeps_waits():
+    packer = Packer(seq_len=10, rows=1, buffer=1, algorithm="largest_first")
+    items = [ps(6, "a"), ps(6, "b")]
+    for item in items:
+        list(packer.push(item))
+    assert packer.emitted == 1 and packer.waited() == [1]  # "b" was there when the first batch was made
+    fresh = Packer(seq_len=10, rows=1, buffer=1, algorithm="largest_first")
+    fresh.restore(list(packer.pending), [3])
+    assert fresh.waited() == [3]
+    with pytest.raises(ValueError, match="waits"):
+        fresh.restore([ps(1, "x")], [1, 2])

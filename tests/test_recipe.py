@@ -171,7 +171,7 @@ def test_extends_is_suggested_only_in_files(tmp_path):
         ({"patch_ops": [{"p": 0.5}]},
          "patch_ops.0.name: required key is missing: one of 'standardize', 'jitter', 'shuffle', 'noise'"),
         ({"packing": {"algorithm": "bestfit"}},
-         ("packing.algorithm: must be one of 'first_fit', 'best_fit', 'in_order' "
+         ("packing.algorithm: must be one of 'largest_first', 'first_fit', 'best_fit', 'in_order' "
           "(got 'bestfit'; did you mean 'best_fit'?)")),
         ({"source": {"shards": ["a.tar", 5]}},
          "source.shards: must be a string, a list of strings or null (got ['a.tar', 5])"),

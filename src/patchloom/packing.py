@@ -7,7 +7,7 @@ the stateless form for a collate_fn.
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from typing import Any
 
 import numpy as np
@@ -15,7 +15,11 @@ import numpy as np
 from .batch import PackedBatch
 from .patches import PatchSet
 
-ALGORITHMS = ("first_fit", "best_fit", "in_order")
+ALGORITHMS = ("largest_first", "first_fit", "best_fit", "in_order")
+
+#: largest_first places the biggest images first and fills the gaps with small ones; an image that
+#: has waited this many batches in the packer goes before all others, so none waits for ever.
+MAX_WAIT_BATCHES = 8
 
 
 def assign_rows(
@@ -26,13 +30,18 @@ def assign_rows(
     max_images_per_row: int | None = None,
     algorithm: str = "first_fit",
 ) -> tuple[list[list[int]], list[int]]:
-    """Assign items (by token count, in arrival order) to rows.
+    """Assign items (by token count) to rows.
 
-    Returns (row -> item indices in placement order, indices left unplaced). With rows=None as many
-    rows as needed are opened and nothing is left over. Items larger than seq_len are an error.
+    first_fit, best_fit and in_order take the items in arrival order; largest_first takes them from
+    the largest down (first fit decreasing; ties in arrival order). Returns (row -> item indices in
+    placement order, indices left unplaced). With rows=None as many rows as needed are opened and
+    nothing is left over. Items larger than seq_len are an error.
     """
     if algorithm not in ALGORITHMS:
         raise ValueError(f"packing algorithm must be one of {', '.join(ALGORITHMS)} (got {algorithm!r})")
+    if algorithm == "largest_first":
+        order = sorted(range(len(sizes)), key=lambda i: -int(sizes[i]))
+        return _reordered(order, sizes, seq_len=seq_len, rows=rows, max_images_per_row=max_images_per_row)
     cap = max_images_per_row if max_images_per_row is not None else seq_len
     sizes = [int(s) for s in sizes]
     for i, s in enumerate(sizes):
@@ -75,6 +84,14 @@ def assign_rows(
         count[target] += 1
         out[target].append(i)
     return out, left
+
+
+def _reordered(order: Sequence[int], sizes: Sequence[int], *, seq_len: int, rows: int | None,
+               max_images_per_row: int | None) -> tuple[list[list[int]], list[int]]:
+    """First fit over the items taken in `order`; indices mapped back to the caller's."""
+    out, left = assign_rows([sizes[i] for i in order], seq_len=seq_len, rows=rows,
+                            max_images_per_row=max_images_per_row, algorithm="first_fit")
+    return [[order[j] for j in row] for row in out], sorted(order[j] for j in left)
 
 
 def build_batch(
@@ -174,7 +191,7 @@ class Packer:
         rows: int,
         max_images_per_row: int = 16,
         buffer: int = 64,
-        algorithm: str = "first_fit",
+        algorithm: str = "largest_first",
     ) -> None:
         if algorithm not in ALGORITHMS:
             raise ValueError(f"packing algorithm must be one of {', '.join(ALGORITHMS)} (got {algorithm!r})")
@@ -184,6 +201,25 @@ class Packer:
         self.buffer = max(1, buffer)
         self.algorithm = algorithm
         self.pending: list[PatchSet] = []
+        self.emitted = 0  # batches assembled so far
+        self._arrived: list[int] = []  # per pending item: self.emitted when it arrived
+
+    def waited(self) -> list[int]:
+        """Per pending item, how many batches it has waited (saved with a resume state)."""
+        self._sync()
+        return [self.emitted - a for a in self._arrived]
+
+    def restore(self, items: list[PatchSet], waited: list[int] | None = None) -> None:
+        """Put back saved look-ahead items with their waits, so packing continues exactly."""
+        waited = list(waited) if waited is not None else [0] * len(items)
+        if len(waited) != len(items):
+            raise ValueError(f"{len(items)} pending items but {len(waited)} waits in the saved state")
+        self.pending = list(items)
+        self._arrived = [self.emitted - int(w) for w in waited]
+
+    def _sync(self) -> None:
+        if len(self._arrived) != len(self.pending):  # pending was set directly: count from now
+            self._arrived = (self._arrived + [self.emitted] * len(self.pending))[: len(self.pending)]
 
     @property
     def pending_tokens(self) -> int:
@@ -196,24 +232,34 @@ class Packer:
                 f"image {item.key!r} has {item.num_tokens} tokens, more than seq_len={self.seq_len}; "
                 "lower sizing.max_tokens or raise packing.seq_len"
             )
+        self._sync()
         self.pending.append(item)
+        self._arrived.append(self.emitted)
         if len(self.pending) >= self.buffer and self.pending_tokens >= self.rows * self.seq_len:
             return [self._assemble()]
         return []
 
-    def flush(self) -> list[PackedBatch]:
-        """Pack everything still waiting, in as many fixed-shape batches as it takes."""
-        out = []
+    def flush(self) -> Iterator[PackedBatch]:
+        """Pack everything still waiting, in as many fixed-shape batches as it takes.
+
+        Lazy: each batch is assembled when asked for, so `pending` always holds exactly the images
+        not yet handed out (a resume state saved between flush batches stays exact)."""
         while self.pending:
-            out.append(self._assemble())
-        return out
+            yield self._assemble()
 
     def _assemble(self) -> PackedBatch:
-        items = self.pending
-        assignment, left = assign_rows(
-            [p.num_tokens for p in items], seq_len=self.seq_len, rows=self.rows,
-            max_images_per_row=self.max_images_per_row, algorithm=self.algorithm,
-        )
+        self._sync()
+        items, sizes = self.pending, [p.num_tokens for p in self.pending]
+        if self.algorithm == "largest_first":
+            old = [self.emitted - a >= MAX_WAIT_BATCHES for a in self._arrived]
+            order = sorted(range(len(items)), key=lambda i: (not old[i], -sizes[i]))
+            assignment, left = _reordered(order, sizes, seq_len=self.seq_len, rows=self.rows,
+                                          max_images_per_row=self.max_images_per_row)
+        else:
+            assignment, left = assign_rows(sizes, seq_len=self.seq_len, rows=self.rows,
+                                           max_images_per_row=self.max_images_per_row, algorithm=self.algorithm)
         batch = build_batch(items, assignment, seq_len=self.seq_len, max_images_per_row=self.max_images_per_row)
         self.pending = [items[i] for i in left]
+        self._arrived = [self._arrived[i] for i in left]
+        self.emitted += 1
         return batch

@@ -230,7 +230,8 @@ class Pipeline:
         pending = [tuple(ref) for ref in state["pending"]]
         records = fetch_records(held + pending, allow_shell=self.allow_shell)
         self._shuffle.held = records[: len(held)]
-        self._packer.pending = [process_record(rec, r, self.epoch) for rec in records[len(held):]]
+        self._packer.restore([process_record(rec, r, self.epoch) for rec in records[len(held):]],
+                             state.get("pending_waited"))
         self.ledger = Ledger.from_state(state["ledger"])
         self._batches = int(state["batches"])
 
@@ -324,6 +325,7 @@ class Pipeline:
             "shuffle_rng": None if fresh else shuffle.rng.bit_generator.state,
             "shuffle_held": [] if fresh else [[rec.url, rec.index] for rec in shuffle.held],
             "pending": [] if fresh else [[ps.meta["shard"], ps.meta["index"]] for ps in packer.pending],
+            "pending_waited": [] if fresh else packer.waited(),
             "ledger": Ledger().state_dict() if fresh else self.ledger.state_dict(),
         }
 
