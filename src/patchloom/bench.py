@@ -29,9 +29,10 @@ import numpy as np
 from PIL import Image
 from tqdm import tqdm
 
+from .packing import Packer
 from .patches import normalize, patchify
 from .pipeline import Pipeline
-from .sample import parse_label
+from .sample import SampleError, parse_label, process_record
 from .recipe import Recipe
 from .sizing import RESAMPLE
 from .sources import ShardTask, expand_shards, read_tasks, shard_order
@@ -50,7 +51,12 @@ __all__ = [
     "format_bench",
     "run_bench",
     "square_patches",
+    "stage_profile",
 ]
+
+#: Stages in the order the per-sample chain runs them, as `process_record(timings=...)` names them.
+STAGES = ("read", "header", "sizing", "decode", "resize", "augment", "patches", "drop", "patch_ops", "output",
+          "pack")
 
 SIDES = ("baseline", "pipeline")
 
@@ -167,6 +173,8 @@ class RunResult:
     batches: int = 0
     tokens: int = 0  # real (non-padding) tokens delivered
     slots: int = 0  # all token slots delivered, padding included
+    last_tokens: int = 0  # the final batch's share of tokens and slots (an end-of-stream effect)
+    last_slots: int = 0
     seconds: float = 0.0
     cpu_seconds: float = 0.0
     peak_rss_mib: float | None = None  # process high-water mark after the run
@@ -191,11 +199,19 @@ class RunResult:
     def padding_pct(self) -> float:
         return 100.0 * (1 - self.tokens / self.slots) if self.slots else 0.0
 
+    @property
+    def steady_padding_pct(self) -> float:
+        """Padding without the final batch, whose part-empty rows say how the stream ended, not how
+        well the batches are filled (on a long epoch that one batch is a vanishing share)."""
+        slots = self.slots - self.last_slots
+        return 100.0 * (1 - (self.tokens - self.last_tokens) / slots) if slots > 0 else self.padding_pct
+
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)
         d.update(images_per_s=self.images_per_s, images_per_cpu_s=self.images_per_cpu_s,
                  useful_tokens_per_s=self.useful_tokens_per_s,
-                 tokens_per_image=self.tokens_per_image, padding_pct=self.padding_pct)
+                 tokens_per_image=self.tokens_per_image, padding_pct=self.padding_pct,
+                 steady_padding_pct=self.steady_padding_pct)
         return d
 
 
@@ -211,9 +227,13 @@ def _time_baseline(recipe: Recipe, urls: list[str], max_images: int | None, bar:
     base = SquareBaseline(recipe, urls, max_images=max_images)
     res = RunResult("baseline")
     t0, c0 = time.perf_counter(), time.process_time()
+    before = 0
     for patches, _labels in base:
         res.batches += 1
         res.slots += patches.shape[0] * patches.shape[1]
+        res.last_slots = patches.shape[0] * patches.shape[1]
+        res.last_tokens = (base.images - before) * base.tokens_per_image  # images this batch brought
+        before = base.images
         bar.update(base.images - bar.n)
     res.seconds, res.cpu_seconds = time.perf_counter() - t0, time.process_time() - c0
     res.images, res.skipped = base.images, base.skipped
@@ -230,6 +250,7 @@ def _time_pipeline(recipe: Recipe, urls: list[str], max_images: int | None, bar:
         res.images += batch.num_images
         res.tokens += batch.num_tokens
         res.slots += batch.segment_ids.size
+        res.last_tokens, res.last_slots = batch.num_tokens, batch.segment_ids.size
         bar.update(batch.num_images)
         if max_images is not None and res.images >= max_images:
             break
@@ -245,6 +266,43 @@ def _warm_cache(recipe: Recipe, urls: list[str]) -> None:
         pass
 
 
+def stage_profile(recipe: Recipe, urls: list[str], max_images: int | None = None) -> dict[str, Any]:
+    """Mean microseconds per image spent in each stage, from one pass in shard order.
+
+    Reading the tar records, each stage of `process_record` (through its `timings` hook) and the
+    packer's push/flush are timed separately; stages a recipe does not use are left out. The sum
+    is a little below a full pipeline run's time per image, which also shuffles and keeps a ledger.
+    """
+    times: dict[str, float] = {}
+    p = recipe.packing
+    packer = Packer(seq_len=p.seq_len, rows=p.rows, max_images_per_row=p.max_images_per_row, buffer=p.buffer,
+                    algorithm=p.algorithm)
+    images = 0
+    records = read_tasks([ShardTask(u) for u in urls], allow_shell=False)
+    t = time.perf_counter()
+    for rec in records:
+        times["read"] = times.get("read", 0.0) + time.perf_counter() - t
+        try:
+            ps = process_record(rec, recipe, 0, timings=times)
+        except SampleError:
+            t = time.perf_counter()
+            continue
+        t = time.perf_counter()
+        packer.push(ps)
+        images += 1
+        now = time.perf_counter()
+        times["pack"] = times.get("pack", 0.0) + now - t
+        t = now
+        if max_images is not None and images >= max_images:
+            break
+    t = time.perf_counter()
+    for _ in packer.flush():
+        pass
+    times["pack"] = times.get("pack", 0.0) + time.perf_counter() - t
+    per = {k: 1e6 * times[k] / max(1, images) for k in STAGES if k in times}
+    return {"images": images, "us_per_image": per, "total_us": sum(per.values())}
+
+
 def _summary(runs: list[RunResult]) -> dict[str, Any]:
     """Medians of the rates over the runs; counts from the first run (they do not vary)."""
     first = runs[0]
@@ -254,6 +312,7 @@ def _summary(runs: list[RunResult]) -> dict[str, Any]:
         "batches": first.batches,
         "tokens_per_image": first.tokens_per_image,
         "padding_pct": first.padding_pct,
+        "steady_padding_pct": first.steady_padding_pct,
         "images_per_s": statistics.median(r.images_per_s for r in runs),
         "useful_tokens_per_s": statistics.median(r.useful_tokens_per_s for r in runs),
         "seconds": statistics.median(r.seconds for r in runs),
@@ -267,10 +326,12 @@ def _ratio(num: float, den: float) -> float:
 
 
 def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_images: int | None = None,
-              repeats: int = 3, progress: bool = False) -> dict:
+              repeats: int = 3, progress: bool = False, quality_check: bool = True) -> dict:
     """Time the baseline and the pipeline `repeats` times each, interleaved; return a JSON-able dict.
 
     `shards` overrides the recipe's; `max_images` stops each run after the batch that reaches it.
+    After the timed runs, one untimed pass measures per-stage microseconds (`stages`) and, with
+    `quality_check`, the PSNR of the pipeline's pixels against full decode + Lanczos (`quality`).
     The dict holds each side's runs and medians and `ratio` (pipeline / baseline) for images/s and
     useful (non-padding) tokens/s.
     """
@@ -292,7 +353,13 @@ def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_imag
             res.peak_rss_mib = _peak_rss_mib()
             runs[side].append(res)
     med = {side: _summary(runs[side]) for side in SIDES}
+    stages = stage_profile(recipe, urls, max_images)
+    from .bench_quality import decode_quality
+
+    quality = decode_quality(recipe, shards=urls, max_images=max_images or 300) if quality_check else None
     return {
+        "stages": stages,
+        "quality": quality,
         "recipe": recipe.fingerprint(),
         "shards": len(urls),
         "repeats": repeats,
@@ -322,12 +389,13 @@ def format_bench(result: dict) -> str:
         "baseline": f"baseline (square {side_px}x{side_px}, {result['baseline_batch_images']} img/batch)",
         "pipeline": f"pipeline ({rows_} x {seq} tokens/batch)",
     }
-    head = ("", "images", "skipped", "tokens/img", "padding", "images/s", "useful tok/s", "median s", "cpu s")
+    head = ("", "images", "skipped", "tokens/img", "padding", "w/o last batch", "images/s", "useful tok/s",
+            "median s", "cpu s")
     table = [head]
     for side in SIDES:
         m = result[side]["median"]
         table.append((names[side], f"{m['images']}", f"{m['skipped']}", f"{m['tokens_per_image']:.1f}",
-                      f"{m['padding_pct']:.1f} %", f"{m['images_per_s']:.1f}",
+                      f"{m['padding_pct']:.1f} %", f"{m['steady_padding_pct']:.1f} %", f"{m['images_per_s']:.1f}",
                       f"{m['useful_tokens_per_s']:,.0f}", f"{m['seconds']:.2f}", f"{m['cpu_seconds']:.2f}"))
     widths = [max(len(row[i]) for row in table) for i in range(len(head))]
     fmt = [(lambda s, w=w: s.ljust(w)) if i == 0 else (lambda s, w=w: s.rjust(w)) for i, w in enumerate(widths)]
@@ -341,6 +409,17 @@ def format_bench(result: dict) -> str:
         lines.append(f"  {side} runs, images/s: {rates}")
     if result.get("peak_rss_mib") is not None:
         lines.append(f"  process peak RSS: {result['peak_rss_mib']:.0f} MiB (both sides, one process)")
+    stages = result.get("stages")
+    if stages:
+        total = stages["total_us"] or 1.0
+        parts = "  ".join(f"{k} {v:,.0f}" for k, v in stages["us_per_image"].items())
+        lines.append(f"  pipeline stages, us/image over {stages['images']} images: {parts}  (sum {total:,.0f})")
+        pack = stages["us_per_image"].get("pack", 0.0)
+        lines.append(f"  packing share of the chain: {100 * pack / total:.2f} %")
+    if result.get("quality"):
+        from .bench_quality import format_quality
+
+        lines += ["  " + line for line in format_quality(result["quality"]).splitlines()]
     ratio = result["ratio"]
     lines.append(f"  by CPU time: {ratio['images_per_cpu_s']:.2f}x images/s")
     lines.append(f"pipeline / baseline: {ratio['images_per_s']:.2f}x images/s, "

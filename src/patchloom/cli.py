@@ -83,10 +83,19 @@ def cmd_bench(args: argparse.Namespace) -> int:
     from .demodata import demo_shard_pattern
 
     progress = not args.no_progress
-    if args.recipe == "demo":
+    if args.recipe == "photos":
+        from .benchdata import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern
+
+        args.data = args.data or "patchloom-bench"
+        recipe = Recipe.from_dict(PHOTO_RECIPE, origin="built-in benchmark recipe")
+        make_photo_shards(args.data, progress=progress)
+        shards = args.shards or photo_shard_pattern(args.data)
+    elif args.recipe == "demo":
+        args.data = args.data or "patchloom-demo"
         recipe = Recipe.from_dict(DEMO_RECIPE, origin="built-in demo recipe")
         shards = args.shards or demo_shard_pattern(args.data, shards=4)
     else:
+        args.data = args.data or "patchloom-demo"
         recipe = Recipe.from_file(args.recipe)
         shards = args.shards
     spec = shards if shards is not None else recipe.source.shards
@@ -102,6 +111,16 @@ def cmd_bench(args: argparse.Namespace) -> int:
 
         result = bench_resume(recipe, shards=shards)
         text = format_resume_bench(result)
+    elif args.workers is not None:
+        from .bench_scale import bench_workers, format_workers
+
+        result = bench_workers(recipe, shards=shards, workers=tuple(range(args.workers + 1)), progress=progress)
+        text = format_workers(result)
+    elif args.soak is not None:
+        from .bench_scale import bench_soak, format_soak
+
+        result = bench_soak(recipe, shards=shards, images=args.soak, progress=progress)
+        text = format_soak(result)
     elif args.drop_modes:
         from .bench_drops import bench_drop_modes, format_drop_bench
 
@@ -155,18 +174,24 @@ def build_parser() -> argparse.ArgumentParser:
     run.set_defaults(func=cmd_run)
 
     bench = sub.add_parser("bench", help="time a recipe beside a plain square-resize baseline and print the ratio")
-    bench.add_argument("recipe", help="recipe YAML file, or `demo` for the built-in demo recipe")
+    bench.add_argument("recipe", help="recipe YAML file; `photos` for the built-in benchmark corpus (300 web-sized "
+                                      "JPEGs, 196 tokens); `demo` for the demo recipe and data")
     bench.add_argument("--shards", help="shard spec overriding the recipe's source.shards")
     bench.add_argument("--repeats", type=int, default=3, help="interleaved runs of each side (default: %(default)s)")
     bench.add_argument("--max-images", type=int, help="stop each run after about this many images")
     bench.add_argument("--json", metavar="FILE", help="also write the full result as JSON")
-    bench.add_argument("--data", default="patchloom-demo", help="where demo shards are made if needed")
+    bench.add_argument("--data", help="where the demo or benchmark shards are made if needed "
+                                      "(default: patchloom-demo, or patchloom-bench for `photos`)")
     bench.add_argument("--drop-modes", action="store_true",
                        help="instead: cost per image and realised rate of every token-drop mode")
     bench.add_argument("--packing", action="store_true",
                        help="instead: padding and cost of each packing algorithm and buffer size")
     bench.add_argument("--resume", action="store_true",
                        help="instead: cost of state_dict() and of resuming mid-epoch")
+    bench.add_argument("--workers", type=int, metavar="N",
+                       help="instead: images/s through a torch DataLoader at 0..N workers, and the ratio to 0")
+    bench.add_argument("--soak", type=int, metavar="IMAGES",
+                       help="instead: stream this many images (shards repeated) and trace resident memory")
     bench.add_argument("--no-progress", action="store_true", help="no progress bars")
     bench.set_defaults(func=cmd_bench)
 

@@ -11,6 +11,7 @@ the header alone and the decoder may skip detail the plan discards (reduced JPEG
 from __future__ import annotations
 
 import json
+import time
 from typing import Any
 
 import numpy as np
@@ -40,12 +41,34 @@ class SkipRatioError(RuntimeError):
 
 
 class _Stage:
-    """Which stage is running, so one wrapper can name it when anything fails."""
+    """Which stage is running, so one wrapper can name it when anything fails.
 
-    __slots__ = ("name",)
+    With a `times` dict it also adds each stage's wall time (seconds) under its label, for the
+    benchmark's per-stage breakdown; without one, entering a stage costs one attribute write.
+    """
 
-    def __init__(self) -> None:
+    __slots__ = ("name", "times", "_label", "_t0")
+
+    def __init__(self, times: dict[str, float] | None = None) -> None:
         self.name = "select"
+        self.times = times
+        self._label: str | None = None
+        self._t0 = 0.0
+
+    def enter(self, name: str, label: str | None = None) -> None:
+        """Start stage `name` (the word errors use); `label` names it in the timings if different."""
+        self.name = name
+        if self.times is not None:
+            now = time.perf_counter()
+            if self._label is not None:
+                self.times[self._label] = self.times.get(self._label, 0.0) + now - self._t0
+            self._label, self._t0 = label or name, now
+
+    def stop(self) -> None:
+        """Close the running stage's timing."""
+        if self.times is not None and self._label is not None:
+            self.times[self._label] = self.times.get(self._label, 0.0) + time.perf_counter() - self._t0
+            self._label = None
 
 
 def _seed32(seed: int, epoch: int, key: str, stage: str) -> int:
@@ -122,23 +145,23 @@ def finish(image: Image.Image, plan: SizePlan, recipe: Recipe, *, seed: int, epo
     stage = stage or _Stage()
     if trace is not None:
         trace["decoded"], trace["plan"] = image, plan
-    stage.name = "resize"
+    stage.enter("resize")
     resized = np.asarray(resize_to_plan(image, plan, resample=recipe.sizing.resample,
                                         background=recipe.decode.background))
     if trace is not None:
         trace["resized"] = resized
     aug = _augmenter(recipe)
     if aug is not None and aug.has_after:
-        stage.name = "augment"
+        stage.enter("augment")
         resized = aug.after_resize(resized, _seed32(seed, epoch, key, "augment-after"))
     if trace is not None:
         trace["augmented"] = resized
-    stage.name = "patches"
+    stage.enter("patches")
     grid = (plan.grid_h, plan.grid_w)
     ps = PatchSet(patchify(resized, plan.patch_size), grid_coords(*grid), grid, key, label,
                   {**meta, "plan": plan.to_dict()})
     if recipe.drop.mode != "none":
-        stage.name = "drop"
+        stage.enter("drop")
         from .dropping import apply_drop, decide_drop
 
         decision = decide_drop(recipe.drop, grid, ps.patches, sample_rng(seed, epoch, key, "drop"))
@@ -147,7 +170,7 @@ def finish(image: Image.Image, plan: SizePlan, recipe: Recipe, *, seed: int, epo
             trace["drop"] = decision
     out = recipe.output
     if recipe.patch_ops:
-        stage.name = "patch_ops"
+        stage.enter("patch_ops")
         from .patchops import apply_patch_ops
 
         extra = [ps.coords] + ([ps.masked] if ps.masked is not None else [])
@@ -158,6 +181,7 @@ def finish(image: Image.Image, plan: SizePlan, recipe: Recipe, *, seed: int, epo
             ps.masked = extra[1]
         ps.patches = values.astype(out.dtype) if standardized else normalize(values, out.mean, out.std, out.dtype)
     else:
+        stage.enter("output")
         ps.patches = normalize(ps.patches, out.mean, out.std, out.dtype)
     if trace is not None:
         trace["patchset"] = ps
@@ -173,24 +197,26 @@ def from_pixels(image: Image.Image, recipe: Recipe, *, seed: int, epoch: int, ke
         trace["original"] = image
     aug = _augmenter(recipe)
     if aug is not None and aug.has_before:
-        stage.name = "augment"
+        stage.enter("augment")
         image = Image.fromarray(aug.before_sizing(np.asarray(image), _seed32(seed, epoch, key, "augment-before")))
-    stage.name = "sizing"
+    stage.enter("sizing")
     plan = plan_for(image.height, image.width, recipe, seed=seed, epoch=epoch, key=key)
     return finish(image, plan, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage,
                   trace=trace)
 
 
-def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, Any] | None = None) -> PatchSet:
+def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, Any] | None = None,
+                   timings: dict[str, float] | None = None) -> PatchSet:
     """One raw record -> PatchSet, raising SampleError naming shard, key and stage on failure.
 
     `trace`, when given, receives the intermediates: original, decoded, plan, resized, augmented,
-    drop (a DropDecision) and patchset."""
-    stage = _Stage()
+    drop (a DropDecision) and patchset. `timings`, when given, accumulates seconds per stage
+    (header, sizing, decode, resize, augment, patches, drop, patch_ops, output)."""
+    stage = _Stage(timings)
     seed, key = recipe.seed, rec.key
     try:
         if rec.error is not None:
-            stage.name = "read"
+            stage.enter("read")
             raise ValueError(rec.error)
         size = sum(len(v) for v in rec.members.values())
         if size > recipe.source.max_sample_bytes:
@@ -200,7 +226,7 @@ def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, 
             )
         ext, data = find_image(rec, recipe.source.image_keys)
         label = parse_label(rec, recipe.source.label_key)
-        stage.name = "decode"
+        stage.enter("decode", "header")
         opened = open_image(data, pixel_limit=recipe.decode.pixel_limit)
         meta = {"shard": rec.url, "index": rec.index, "member": ext, "format": opened.format,
                 "mode": opened.mode, "size": [opened.height, opened.width]}
@@ -211,9 +237,9 @@ def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, 
             image = opened.decode(background=bg)
             return from_pixels(image, recipe, seed=seed, epoch=epoch, key=key, label=label, meta=meta, stage=stage,
                                trace=trace)
-        stage.name = "sizing"
+        stage.enter("sizing")
         plan = plan_for(opened.height, opened.width, recipe, seed=seed, epoch=epoch, key=key)
-        stage.name = "decode"
+        stage.enter("decode")
         hint = _reduce_hint(opened, plan) if recipe.decode.reduced_jpeg else None
         image = opened.decode(background=bg, reduce_to=hint)
         if trace is not None:
@@ -224,6 +250,8 @@ def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, 
         raise
     except Exception as exc:
         raise SampleError(rec.url, rec.key, stage.name, f"{type(exc).__name__}: {exc}") from exc
+    finally:
+        stage.stop()
 
 
 def image_to_patches(image: np.ndarray | Image.Image, recipe: Recipe, seed: int | None = None,

@@ -1,0 +1,126 @@
+"""The benchmark corpus, the per-stage profile, the quality check and the scale benchmarks.
+
+Small inputs only; no speed is asserted anywhere (the numbers depend on the machine).
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import math
+import tarfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from patchloom.bench import STAGES, run_bench, stage_profile
+from patchloom.bench_quality import decode_quality, format_quality, psnr
+from patchloom.benchdata import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern, photo_size
+from patchloom.recipe import Recipe
+from patchloom.sources import expand_shards
+
+
+@pytest.fixture(scope="module")
+def photos(tmp_path_factory: pytest.TempPathFactory) -> str:
+    out = tmp_path_factory.mktemp("photos")
+    make_photo_shards(out, images=12, shards=2, large_share=0.0, progress=False)
+    return photo_shard_pattern(out, shards=2)
+
+
+def _recipe() -> Recipe:
+    return Recipe.from_dict(PHOTO_RECIPE)
+
+
+def test_photo_sizes_follow_the_web_mix() -> None:
+    rng = np.random.default_rng(0)
+    sizes = np.array([photo_size(rng) for _ in range(4000)], np.float64)
+    area = sizes[:, 0] * sizes[:, 1]
+    aspect = sizes[:, 1] / sizes[:, 0]
+    assert 0.07 < float((area >= 2e6).mean()) < 0.13  # one in ten is camera-sized
+    assert 150_000 < float(np.median(area)) < 280_000  # about 500 x 430 typical
+    assert aspect.min() >= 1 / 3 - 0.01 and aspect.max() <= 3 + 0.03
+
+
+def test_photo_shards_are_jpegs_and_reused(photos: str, tmp_path: Path) -> None:
+    paths = expand_shards(photos, allow_shell=False)
+    assert len(paths) == 2
+    with tarfile.open(paths[0]) as tar:
+        names = tar.getnames()
+        jpg = next(n for n in names if n.endswith(".jpg"))
+        meta = json.loads(tar.extractfile(jpg.replace(".jpg", ".json")).read())
+        img = Image.open(io.BytesIO(tar.extractfile(jpg).read()))
+        assert img.format == "JPEG" and img.size == (meta["width"], meta["height"])
+    assert sum(n.endswith(".jpg") for n in names) == 6
+    folder = Path(paths[0]).parent
+    stamp = (folder / "corpus.json").read_text()
+    before = Path(paths[0]).stat().st_mtime_ns
+    make_photo_shards(folder, images=12, shards=2, large_share=0.0, progress=False)
+    assert Path(paths[0]).stat().st_mtime_ns == before and (folder / "corpus.json").read_text() == stamp
+    with pytest.raises(ValueError, match="large_share"):
+        make_photo_shards(tmp_path, images=4, shards=1, large_share=2.0)
+
+
+def test_stage_profile_names_the_stages_it_ran(photos: str) -> None:
+    prof = stage_profile(_recipe(), expand_shards(photos, allow_shell=False))
+    per = prof["us_per_image"]
+    assert prof["images"] == 12
+    assert {"read", "header", "sizing", "decode", "resize", "patches", "output", "pack"} <= set(per)
+    assert "drop" not in per and "augment" not in per  # this recipe does neither
+    assert list(per) == [k for k in STAGES if k in per]
+    assert all(v > 0 for v in per.values())
+    assert math.isclose(prof["total_us"], sum(per.values()))
+
+
+def test_psnr_matches_its_formula() -> None:
+    a = np.zeros((4, 4, 3), np.uint8)
+    b = a.copy()
+    assert psnr(a, b) == math.inf
+    b[0, 0, 0] = 255  # one wrong value of 48: MSE = 255^2 / 48
+    assert psnr(a, b) == pytest.approx(10 * math.log10(48))
+    with pytest.raises(ValueError, match="shape"):
+        psnr(a, b[:2])
+
+
+def test_quality_check_compares_against_full_decode(photos: str) -> None:
+    res = decode_quality(_recipe(), shards=photos, max_images=12)
+    assert res["images"] == 12 and res["failed"] == 0
+    assert res["decode_paths"].get("simplejpeg", 0) == 24  # both decodes of every image took the fast path
+    assert res["pipeline"]["mean_db"] > 30  # bicubic vs Lanczos on smooth scenes: far from noise
+    low = decode_quality(_recipe().replace(sizing={"resample": "nearest"}), shards=photos, max_images=12)
+    assert low["pipeline"]["mean_db"] < res["pipeline"]["mean_db"]  # a worse filter scores worse
+    assert "pipeline path" in format_quality(res)
+
+
+def test_run_bench_reports_stages_quality_and_steady_padding(photos: str) -> None:
+    res = run_bench(_recipe(), shards=photos, repeats=1)
+    assert res["stages"]["images"] == 12 and res["quality"]["images"] == 12
+    pipe = res["pipeline"]["runs"][0]
+    assert pipe["steady_padding_pct"] <= pipe["padding_pct"] or pipe["batches"] == 1
+    assert res["ratio"]["images_per_s"] > 0
+    assert run_bench(_recipe(), shards=photos, repeats=1, quality_check=False)["quality"] is None
+
+
+def test_workers_bench_counts_every_image_at_each_worker_count(photos: str) -> None:
+    pytest.importorskip("torch")
+    from patchloom.bench_scale import bench_workers, format_workers
+
+    res = bench_workers(_recipe(), shards=photos, workers=(0, 1), epochs=2)
+    assert [r["workers"] for r in res["results"]] == [0, 1]
+    assert all(r["images"] == 12 and r["images_per_s"] > 0 for r in res["results"])
+    assert res["results"][0]["ratio_to_0"] == 1.0
+    assert "vs 0 workers" in format_workers(res)
+    with pytest.raises(ValueError, match="epochs"):
+        bench_workers(_recipe(), shards=photos, epochs=1)
+
+
+def test_soak_streams_past_the_corpus_and_traces_memory(photos: str) -> None:
+    from patchloom.bench_scale import bench_soak, current_rss_mib, format_soak
+
+    if current_rss_mib() is None:
+        pytest.skip("no /proc/self/statm on this platform")
+    res = bench_soak(_recipe().replace(packing={"rows": 1}), shards=photos, images=40, samples=4)  # ~5 per batch
+    assert res["images"] >= 40 and res["shard_passes"] == 4  # 12 images a pass
+    assert len(res["rss_trace_mib"]) >= 3 and res["growth_mib"] is not None
+    assert "growth" in format_soak(res)
