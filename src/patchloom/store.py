@@ -18,6 +18,12 @@ Hashes (all sha256, hex), as recorded in the manifest:
 Shards are written under a `.tmp` name and renamed when complete; the manifest is written last (also
 through a temporary name), so a folder without `manifest.json` is an unfinished pack and readers
 refuse it. Readers only open shards the manifest names.
+
+Two engines run the per-worker jobs: `local` (processes on this machine) and `ray` (one Ray Data task
+per job, `engine_ray`). Both build the jobs and the manifest here, and each job runs the same
+`_job_pack`, so their outputs are byte-identical for the same worker count. While a Ray pack is
+unfinished the folder also holds `.groups/` (one done-record per finished job, for `--resume`); it is
+removed once the manifest is written.
 """
 
 from __future__ import annotations
@@ -29,6 +35,7 @@ import io
 import json
 import os
 import queue as queue_mod
+import shutil
 import sys
 import tarfile
 import time
@@ -520,29 +527,87 @@ def _bar(progress: bool, **kw):
 # ------------------------------------------------------------------------------------------------
 
 
+GROUPS = ".groups"  # the Ray engine's done-records of an unfinished pack (engine_ray); gone once finished
+
+
 def _ours(p: Path) -> bool:
     name = p.name
-    if name in (MANIFEST, MANIFEST + _TMP):
+    if name in (MANIFEST, MANIFEST + _TMP, GROUPS):
         return True
     return name.startswith("packed-w") and name.endswith((".tar", ".tar" + _TMP))
 
 
-def _prepare_out(out: Path, overwrite: bool) -> None:
+def _prepare_out(out: Path, overwrite: bool, resume: bool = False) -> None:
+    """Make `out` a folder fit to pack into: empty, or (overwrite) cleared of a previous pack's files.
+
+    With `resume` the folder is left as it is: the Ray engine decides which of its files to keep.
+    """
     if out.exists() and not out.is_dir():
         raise StoreError(f"output {out} exists and is not a folder")
     out.mkdir(parents=True, exist_ok=True)
     entries = sorted(out.iterdir())
-    if not entries:
+    if not entries or resume:
         return
     if not overwrite:
         raise StoreError(f"output folder {out} is not empty ({len(entries)} entries, e.g. {entries[0].name}); "
-                         "choose an empty folder or pass overwrite=True (--overwrite)")
+                         "choose an empty folder or pass overwrite=True (--overwrite); to continue an "
+                         "interrupted `--engine ray` pack, pass resume=True (--resume)")
     manifest = out / MANIFEST
     if manifest.exists():  # first, so the folder never looks like a finished pack of mixed shards
         manifest.unlink()
     for p in entries:
-        if p.is_file() and _ours(p) and p.exists():
+        if p.name == GROUPS and p.is_dir() and not p.is_symlink():
+            shutil.rmtree(p)
+        elif p.is_file() and _ours(p) and p.exists():
             p.unlink()
+
+
+def _pack_jobs(recipe_dict: dict[str, Any], fingerprint: str, inputs: list[str], *, out: Path, workers: int,
+               epoch: int, allow_shell: bool, per_shard: int) -> list[dict[str, Any]]:
+    """One job per worker (group): job i packs `Pipeline(..., worker=i, num_workers=workers)` into out."""
+    return [{"recipe": recipe_dict, "fingerprint": fingerprint, "shards": inputs, "epoch": epoch, "worker": i,
+             "workers": workers, "allow_shell": allow_shell, "out": str(out), "per_shard": per_shard}
+            for i in range(workers)]
+
+
+def _hash_inputs(inputs: list[str], *, allow_shell: bool) -> list[dict[str, Any]]:
+    """The manifest's `inputs`: path, byte count and sha256 of each input shard, in input order."""
+    hashed = []
+    for url in inputs:
+        size, digest = _hash_input(url, allow_shell=allow_shell)
+        hashed.append({"path": url, "bytes": size, "sha256": digest})
+    return hashed
+
+
+def _build_manifest(recipe_dict: dict[str, Any], fingerprint: str, *, epoch: int, workers: int, per_shard: int,
+                    inputs: list[dict[str, Any]], results: list[dict[str, Any]]) -> dict[str, Any]:
+    """The manifest of a finished pack from the per-worker job results (in worker order), whichever engine ran them."""
+    shapes = {json.dumps(r["shape"], sort_keys=True) for r in results if r["shape"] is not None}
+    if len(shapes) > 1:
+        raise StoreError(f"workers produced different batch shapes: {sorted(shapes)}")
+    batches = sum(r["batches"] for r in results)
+    tokens, slots = sum(r["tokens"] for r in results), sum(r["slots"] for r in results)
+    return {
+        "format": FORMAT,
+        "version": FORMAT_VERSION,
+        "recipe": recipe_dict,
+        "fingerprint": fingerprint,
+        "libraries": _versions(),
+        "epoch": epoch,
+        "workers": workers,
+        "max_batches_per_shard": per_shard,
+        "hash_rule": _HASH_RULE,
+        "batch_shape": next((r["shape"] for r in results if r["shape"] is not None), None),
+        "inputs": inputs,
+        "shards": [entry for r in results for entry in r["shards"]],
+        "worker_batches": [r["batches"] for r in results],
+        "ledger": _merge_ledgers([r["ledger"] for r in results]),
+        "totals": {"batches": batches, "images": sum(r["images"] for r in results), "tokens": tokens,
+                   "slots": slots, "padding_fraction": round(1 - tokens / slots, 6) if slots else 0.0},
+    }
+
+
+ENGINES = ("local", "ray")
 
 
 def pack_to_dir(
@@ -556,58 +621,55 @@ def pack_to_dir(
     allow_shell: bool = False,
     max_batches_per_shard: int = 64,
     overwrite: bool = False,
+    engine: str = "local",
+    address: str | None = None,
+    resume: bool = False,
 ) -> dict[str, Any]:
     """Run the recipe over its shards (or `shards`) and write the batches to `out_dir`; return the manifest.
 
-    `workers=N` runs N processes, worker i packing `Pipeline(..., worker=i, num_workers=N)` into
-    `packed-w{i:03d}-*.tar`; the result depends only on (recipe, inputs, workers, epoch,
-    max_batches_per_shard). A non-empty `out_dir` is refused unless `overwrite` (which removes only
-    a previous pack's manifest, shards and temporary files).
+    `workers=N` splits the work into N groups, group i packing `Pipeline(..., worker=i, num_workers=N)`
+    into `packed-w{i:03d}-*.tar`; the result depends only on (recipe, inputs, workers, epoch,
+    max_batches_per_shard), not on the engine. `engine="local"` runs the groups as processes on this
+    machine; `engine="ray"` runs each group as one Ray Data task on the Ray cluster at `address`
+    (see `engine_ray`), with the same shards and manifest byte for byte. A non-empty `out_dir` is
+    refused unless `overwrite` (which removes only a previous pack's files) or, for the Ray engine,
+    `resume` (which keeps the groups an interrupted run finished).
     """
     if not isinstance(recipe, Recipe):
         raise TypeError(f"pack_to_dir needs a Recipe (got {type(recipe).__name__}); use Recipe.from_file(path)")
     if workers < 1 or max_batches_per_shard < 1:
         raise StoreError(f"workers and max_batches_per_shard must be >= 1 (got {workers}, {max_batches_per_shard})")
+    if engine not in ENGINES:
+        raise StoreError(f"unknown engine {engine!r}; choose one of {', '.join(ENGINES)}")
+    if engine == "local" and (address is not None or resume):
+        raise StoreError("address and resume (--address, --resume) need engine='ray' (--engine ray); the local "
+                         "engine packs from scratch (use --overwrite to replace a previous pack)")
+    if overwrite and resume:
+        raise StoreError("choose overwrite (start again) or resume (keep finished groups), not both")
     inputs = _input_paths(shards if shards is not None else recipe.source.shards, allow_shell=allow_shell)
     out = Path(out_dir)
-    _prepare_out(out, overwrite)
+    _prepare_out(out, overwrite, resume)
     recipe_dict, fingerprint = recipe.to_dict(), recipe.fingerprint()
-    jobs = [{"recipe": recipe_dict, "fingerprint": fingerprint, "shards": inputs, "epoch": epoch, "worker": i,
-             "workers": workers, "allow_shell": allow_shell, "out": str(out), "per_shard": max_batches_per_shard}
-            for i in range(workers)]
-    hashed: list[dict[str, Any]] = []
+    jobs = _pack_jobs(recipe_dict, fingerprint, inputs, out=out, workers=workers, epoch=epoch,
+                      allow_shell=allow_shell, per_shard=max_batches_per_shard)
+    if engine == "ray":
+        from . import engine_ray
 
-    def hash_inputs() -> None:
-        for url in inputs:
-            size, digest = _hash_input(url, allow_shell=allow_shell)
-            hashed.append({"path": url, "bytes": size, "sha256": digest})
-
-    with _bar(progress, desc="pack", unit=" img") as bar:
-        results = _run_jobs("pack", jobs, on_tick=bar.update, meanwhile=hash_inputs)
-    shapes = {json.dumps(r["shape"], sort_keys=True) for r in results if r["shape"] is not None}
-    if len(shapes) > 1:
-        raise StoreError(f"workers produced different batch shapes: {sorted(shapes)}")
-    batches = sum(r["batches"] for r in results)
-    tokens, slots = sum(r["tokens"] for r in results), sum(r["slots"] for r in results)
-    man = {
-        "format": FORMAT,
-        "version": FORMAT_VERSION,
-        "recipe": recipe_dict,
-        "fingerprint": fingerprint,
-        "libraries": _versions(),
-        "epoch": epoch,
-        "workers": workers,
-        "max_batches_per_shard": max_batches_per_shard,
-        "hash_rule": _HASH_RULE,
-        "batch_shape": next((r["shape"] for r in results if r["shape"] is not None), None),
-        "inputs": hashed,
-        "shards": [entry for r in results for entry in r["shards"]],
-        "worker_batches": [r["batches"] for r in results],
-        "ledger": _merge_ledgers([r["ledger"] for r in results]),
-        "totals": {"batches": batches, "images": sum(r["images"] for r in results), "tokens": tokens,
-                   "slots": slots, "padding_fraction": round(1 - tokens / slots, 6) if slots else 0.0},
-    }
+        finished = engine_ray.finished_manifest(out, jobs, resume=resume)
+        if finished is not None:
+            return finished
+        results, hashed = engine_ray.run_pack_jobs(jobs, address=address, progress=progress, resume=resume,
+                                                   hash_inputs=lambda: _hash_inputs(inputs, allow_shell=allow_shell))
+    else:
+        hashed = []
+        with _bar(progress, desc="pack", unit=" img") as bar:
+            results = _run_jobs("pack", jobs, on_tick=bar.update,
+                                meanwhile=lambda: hashed.extend(_hash_inputs(inputs, allow_shell=allow_shell)))
+    man = _build_manifest(recipe_dict, fingerprint, epoch=epoch, workers=workers, per_shard=max_batches_per_shard,
+                          inputs=hashed, results=results)
     _write_atomic(out / MANIFEST, _manifest_bytes(man))
+    if engine == "ray":
+        engine_ray.forget_groups(out)
     return man
 
 
@@ -940,7 +1002,8 @@ def cmd_pack(args: argparse.Namespace) -> int:
             recipe = Recipe.from_file(args.recipe)
         man = pack_to_dir(recipe, args.out, shards=shards, workers=args.workers, epoch=args.epoch,
                           progress=not args.no_progress, allow_shell=args.allow_shell,
-                          max_batches_per_shard=args.max_batches_per_shard, overwrite=args.overwrite)
+                          max_batches_per_shard=args.max_batches_per_shard, overwrite=args.overwrite,
+                          engine=args.engine, address=args.address, resume=args.resume)
     except (StoreError, RecipeError, SourceError, SampleError) as err:
         print(f"patchloom: error: {err}", file=sys.stderr)
         return 2
@@ -983,11 +1046,21 @@ def add_store_commands(subparsers) -> None:
     pack.add_argument("recipe", help="recipe YAML file, or `demo` for the built-in demo recipe")
     pack.add_argument("--out", required=True, help="output folder (must be empty unless --overwrite)")
     pack.add_argument("--shards", help="shard spec overriding the recipe's source.shards")
-    pack.add_argument("--workers", type=int, default=1, help="worker processes (default: %(default)s)")
+    pack.add_argument("--workers", type=int, default=1,
+                      help="worker groups: processes (local) or Ray tasks (ray); the output depends on this "
+                           "number, not on the engine (default: %(default)s)")
     pack.add_argument("--epoch", type=int, default=0)
     pack.add_argument("--max-batches-per-shard", type=int, default=64, help="(default: %(default)s)")
-    pack.add_argument("--engine", choices=["local"], default="local", help="where workers run (default: local)")
+    pack.add_argument("--engine", choices=list(ENGINES), default="local",
+                      help="where the worker groups run: local processes, or tasks on a Ray cluster (needs "
+                           "pip install 'patchloom[ray]'); same output either way (default: %(default)s)")
+    pack.add_argument("--address", default=None,
+                      help="with --engine ray: the Ray cluster to use (`auto`, or HOST:PORT of the head node); "
+                           "default: $RAY_ADDRESS if set, else start Ray on this machine with all its CPUs")
     pack.add_argument("--overwrite", action="store_true", help="replace a previous pack in --out")
+    pack.add_argument("--resume", action="store_true",
+                      help="with --engine ray: continue an interrupted pack in --out, keeping the groups it "
+                           "finished (same recipe, inputs, --workers, --epoch and --max-batches-per-shard)")
     pack.add_argument("--allow-shell", action="store_true",
                       help="allow pipe: shard URLs, which run shell commands (only for shard lists you wrote)")
     pack.add_argument("--no-progress", action="store_true", help="no progress bar")
