@@ -24,10 +24,11 @@ under a `.tmp` name and renamed when complete, so a half shard never looks whole
 Resume: when a group's shards are renamed, its task writes a done-record `.groups/w{i:03d}.json`
 (temporary name, then rename) holding its result (shard entries with hashes, counts, ledger) and the
 key of the run's settings. The driver writes `.groups/run.json` (that key and the input hashes) as
-soon as the inputs are hashed. `resume=True` (`--resume`) keeps the groups whose record carries this
-run's key and whose shard files re-hash to the record, provided the inputs still hash as recorded;
-it removes stale `.tmp` files and the shards of the other groups, runs those groups, and writes the
-manifest exactly as a fresh run would. `.groups/` is removed once the manifest is written, so a
+soon as the inputs are hashed. `resume=True` (`--resume`) first re-hashes the inputs (if they
+changed, or the settings differ, it refuses and asks for `--overwrite`), then keeps the groups whose
+record carries this run's key and whose shard files re-hash to the record, removes stale `.tmp`
+files and the shards of the other groups, runs those groups, and writes the manifest exactly as a
+fresh run would. `.groups/` is removed once the manifest is written, so a
 finished folder is the local engine's folder; resuming a finished folder re-hashes its inputs and
 shards and returns its manifest.
 
