@@ -124,3 +124,16 @@ def test_soak_streams_past_the_corpus_and_traces_memory(photos: str) -> None:
     assert res["images"] >= 40 and res["shard_passes"] == 4  # 12 images a pass
     assert len(res["rss_trace_mib"]) >= 3 and res["growth_mib"] is not None
     assert "growth" in format_soak(res)
+
+
+def test_decode_ablation_script_runs_every_variant(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    root = Path(__file__).resolve().parents[1]
+    out = subprocess.run([sys.executable, str(root / "tools" / "decode_ablation.py"), "--data", str(tmp_path),
+                          "--images", "8", "--repeats", "1"], capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    for name in ("libjpeg-turbo scaled", "Pillow draft scaled", "Pillow full decode"):
+        assert name in out.stdout
+    assert "1.00x of shipped" in out.stdout

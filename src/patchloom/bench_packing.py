@@ -61,7 +61,7 @@ def bench_packing(recipe: Recipe, *, images: int = 20_000, buffers: tuple[int, .
 def format_packing_bench(r: dict[str, Any]) -> str:
     lines = [f"packing {r['images']} budget-sized images (mean {r['tokens_mean']:.0f} tokens) into "
              f"{r['rows']} x {r['seq_len']} batches; final flush excluded",
-             f"  {'algorithm':<10} {'buffer':>6} {'padding':>9} {'us/image':>9}"]
+             f"  {'algorithm':<13} {'buffer':>6} {'padding':>9} {'us/image':>9}"]
     for row in r["results"]:
-        lines.append(f"  {row['algorithm']:<10} {row['buffer']:>6} {row['padding_pct']:>8.2f}% {row['us_per_image']:>9.1f}")
+        lines.append(f"  {row['algorithm']:<13} {row['buffer']:>6} {row['padding_pct']:>8.2f}% {row['us_per_image']:>9.1f}")
     return "\n".join(lines)

@@ -39,7 +39,7 @@ def current_rss_mib() -> float | None:
 
 
 def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, workers: tuple[int, ...] = (0, 1, 2),
-                  epochs: int = 2, progress: bool = False) -> dict[str, Any]:
+                  epochs: int = 4, progress: bool = False) -> dict[str, Any]:
     """Images/s through a torch DataLoader for each worker count (warm epochs and the cold first one)."""
     from torch.utils.data import DataLoader
 
