@@ -74,20 +74,21 @@ def recipe() -> Recipe:
     return Recipe.from_dict(RECIPE)
 
 
-@pytest.fixture(scope="module")
-def packed1(tmp_path_factory, recipe, inputs) -> Path:
-    out = tmp_path_factory.mktemp("packed1")
-    pack_to_dir(recipe, out, shards=inputs, workers=1, progress=False, max_batches_per_shard=PER_SHARD,
+def _packed(tmp_path_factory, recipe, inputs, workers: int) -> Path:
+    out = tmp_path_factory.mktemp(f"packed{workers}")
+    pack_to_dir(recipe, out, shards=inputs, workers=workers, progress=False, max_batches_per_shard=PER_SHARD,
                 overwrite=True)
     return out
+
+
+@pytest.fixture(scope="module")
+def packed1(tmp_path_factory, recipe, inputs) -> Path:
+    return _packed(tmp_path_factory, recipe, inputs, 1)
 
 
 @pytest.fixture(scope="module")
 def packed2(tmp_path_factory, recipe, inputs) -> Path:
-    out = tmp_path_factory.mktemp("packed2")
-    pack_to_dir(recipe, out, shards=inputs, workers=2, progress=False, max_batches_per_shard=PER_SHARD,
-                overwrite=True)
-    return out
+    return _packed(tmp_path_factory, recipe, inputs, 2)
 
 
 def _rewrite_member(shard: Path, member: str, transform) -> None:

@@ -9,8 +9,8 @@ Two decoders share one contract. Baseline and progressive JPEGs in RGB or grey, 
 profile other than sRGB, are decoded by libjpeg-turbo through simplejpeg, which returns numpy
 pixels directly and scales in the DCT (1/2, 1/4, 1/8) faster than Pillow's draft mode; everything
 else (PNG, WebP, CMYK and Adobe JPEGs, non-sRGB ICC profiles, any JPEG simplejpeg refuses) goes
-through Pillow. Both paths pick the same DCT scale (the smallest power of two that keeps the decoded
-size at least twice the planned size), apply the same EXIF orientation, and give pixels within
+through Pillow. Both paths pick the same DCT scale (the strongest of 1/2, 1/4, 1/8 that keeps the
+decoded size at least twice the planned size), apply the same EXIF orientation, and give pixels within
 rounding of each other; `decode_path_counts()` says which path each decode took.
 
 Nothing here touches Pillow's process-wide settings (`Image.MAX_IMAGE_PIXELS`,
@@ -146,7 +146,6 @@ class OpenedImage:
             return rgb
         method = _TRANSPOSE.get(self.orientation)
         return rgb if method is None else rgb.transpose(method)
-
 
     def _decode_fast(self, scale: int) -> np.ndarray | None:
         """Stored-orientation RGB pixels from libjpeg-turbo at 1/scale, or None to use Pillow.
