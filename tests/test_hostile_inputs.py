@@ -32,7 +32,8 @@ BG = (255, 255, 255)
 def recipe(on_error: str = "skip") -> Recipe:
     return Recipe.from_dict({
         "seed": 1,
-        "source": {"on_error": on_error, "shuffle_shards": False, "shuffle_buffer": 0},
+        # The corpus is hostile on purpose (a cut shard among few): the skip guard is tested elsewhere.
+        "source": {"on_error": on_error, "shuffle_shards": False, "shuffle_buffer": 0, "max_skip_ratio": None},
         "sizing": {"patch_size": P, "max_tokens": MAX_TOKENS, "mode": "native"},
         "packing": {"seq_len": MAX_TOKENS, "rows": 2, "max_images_per_row": 4, "buffer": 4},
         "output": {"dtype": "uint8"},
@@ -181,7 +182,7 @@ def corpus() -> tuple[list[tuple[str, dict[str, bytes]]], dict[str, dict]]:
 def build(folder: Path) -> tuple[list[str], dict[str, dict], dict[str, str]]:
     samples, expect = corpus()
     main = write_shard(folder / "main.tar", samples)
-    # Two members with the same name next to each other: webdataset refuses the rest of the shard.
+    # Two members with the same name next to each other: that sample is skipped, the rest is read.
     adjacent = folder / "adjacent-dup.tar"
     png = encode_png(RED)
     with tarfile.open(adjacent, "w") as tar:
@@ -242,7 +243,7 @@ def test_hostile_corpus_skip(tmp_path):
 
     skipped = {s.key: s for s in led.skipped}
     for s in led.skipped:
-        assert s.shard == (names["cut"] if s.key == "cut-1" else names["main"])
+        assert s.shard == {"cut-1": names["cut"], "twice": names["adjacent"]}.get(s.key, names["main"])
     for key, exp in expect.items():
         if "skip" in exp:
             stage, words = exp["skip"]
@@ -258,7 +259,7 @@ def test_hostile_corpus_skip(tmp_path):
             assert img.shape == (gh * P, gw * P, 3)
             if exp["grid"] is not None:
                 assert grid == exp["grid"], key
-    assert sorted(skipped) == sorted([k for k, e in expect.items() if "skip" in e] + ["cut-1"])
+    assert sorted(skipped) == sorted([k for k, e in expect.items() if "skip" in e] + ["cut-1", "twice"])
 
     # Pixel values (first emission of each key; "dup" checked below).
     for key, exp in expect.items():
@@ -271,14 +272,14 @@ def test_hostile_corpus_skip(tmp_path):
     # Non-adjacent duplicate keys within a shard: two separate samples, both emitted, in tar order.
     assert [int(img[0, 0, 2]) for _, img in seen["dup"]] == [0, 255]
 
-    # Adjacent duplicate member names: webdataset raises, the rest of that shard is lost and the
-    # shard is reported; nothing from it is counted as read. The cut tar is reported and the
+    # Adjacent duplicate member names: that sample is skipped with a reason and the rest of the
+    # shard is read. The cut tar is reported and the
     # stream continues with the next shard; cut-0, complete before the cut, is kept and cut-1,
     # the sample it broke off in, is skipped with a reason (test_sample_before_a_cut_member_is_kept).
     errors = {s.shard: s for s in led.shard_errors}
-    assert set(errors) == {names["adjacent"], names["cut"]}
-    assert "duplicate file name" in errors[names["adjacent"]].reason
-    assert "twice" not in seen and "after" not in seen
+    assert set(errors) == {names["cut"]}
+    assert skipped["twice"].stage == "read" and "duplicated member 'png'" in skipped["twice"].reason
+    assert "twice" not in seen and "after" in seen
     assert errors[names["cut"]].stage == "read"
     assert "end of data" in errors[names["cut"]].reason
     assert "cut-0" in seen and "cut-1" not in seen and "cut-2" not in seen
@@ -302,9 +303,15 @@ def test_hostile_shard_raises_without_skip(tmp_path):
     with pytest.raises(SampleError, match=r"cut.tar, key 'cut-1', stage read: .*broke off"):
         for _ in Pipeline(recipe("raise"), [names["cut"]]):
             pass
-    # A broken shard seen without a sample in progress (the duplicate member) raises SourceError.
-    with pytest.raises(SourceError, match="adjacent-dup.tar"):
+    # A repeated member name fails that sample only, naming it.
+    with pytest.raises(SampleError, match=r"adjacent-dup.tar, key 'twice', stage read: .*duplicated member"):
         for _ in Pipeline(recipe("raise"), [names["adjacent"]]):
+            pass
+    # A broken shard seen without a sample in progress (an empty file) raises SourceError.
+    empty = tmp_path / "empty.tar"
+    empty.write_bytes(b"")
+    with pytest.raises(SourceError, match="empty.tar"):
+        for _ in Pipeline(recipe("raise"), [str(empty)]):
             pass
 
 

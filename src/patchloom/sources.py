@@ -1,16 +1,24 @@
 """Sources: shard lists, the rank/worker split, seeded shuffles, and raw records read from tar shards.
 
-Tar parsing is webdataset's; this module decides who reads what, in which order, and keeps each
-record's key and shard URL with it.
+Tar shards are read by a small streaming reader of our own (`_TarReader`): it splits member names
+into key and extension as webdataset does, but also notices what a plain tar walk lets pass: a tar
+cut off at a member boundary (no end-of-archive blocks), a `pipe:` command that failed, a member
+name repeated within a sample, and a member whose header declares more bytes than the recipe
+allows (streamed past, never loaded). This module also decides who reads what, in which order,
+and keeps each record's key and shard URL with it.
 """
 
 from __future__ import annotations
 
 import glob
 import os
+import re
+import subprocess
+import tarfile
+import tempfile
 import warnings
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import braceexpand
 
@@ -21,6 +29,22 @@ SHELL_PREFIXES = ("pipe:",)
 
 class SourceError(ValueError):
     """A shard spec or shard that cannot be read; the message names it and what to change."""
+
+
+class ShardError(SourceError):
+    """One shard failed (unreachable, cut off, corrupt, or its command failed): a caller may skip it
+    and read the others. A bad spec stays a plain SourceError. The message names the shard."""
+
+    def __init__(self, message: str, url: str = "") -> None:
+        super().__init__(message)
+        self.url = url
+
+    def __reduce__(self):  # keep `url` when the error crosses a process boundary (DataLoader workers)
+        return (type(self), (str(self), self.url))
+
+
+def _shard_error(url: str, reason: str) -> ShardError:
+    return ShardError(f"shard {url}: {reason}", url)
 
 
 @dataclass(slots=True)
@@ -74,13 +98,34 @@ def expand_shards(spec: str | Sequence[str] | None, *, allow_shell: bool = False
                 matches = sorted(glob.glob(os.path.expanduser(expanded)))
                 if not matches:
                     raise SourceError(f"shard glob {expanded!r} matches no file")
+                folders = [m for m in matches if os.path.isdir(m)]
+                if folders:
+                    raise SourceError(f"shard glob {expanded!r} matches a folder: " + _folder_message(folders[0]))
                 out.extend(matches)
             else:
                 path = os.path.expanduser(expanded.removeprefix("file:"))
+                if os.path.isdir(path):
+                    raise SourceError(_folder_message(path))
                 if not os.path.isfile(path):
-                    raise SourceError(f"shard {path!r} does not exist (from spec {item!r})")
+                    raise SourceError(_missing_message(path, item))
                 out.append(path)
     return out
+
+
+def _folder_message(path: str) -> str:
+    tars = glob.glob(os.path.join(glob.escape(path), "*.tar"))
+    pattern = os.path.join(path, "*.tar")
+    return f"shard path {path!r} is a folder; did you mean {pattern!r}? (it holds {len(tars)} .tar files)"
+
+
+def _missing_message(path: str, item: str) -> str:
+    """'does not exist', saying where a relative path was looked for and how to make the demo shards."""
+    text = f"shard {path!r} does not exist (from spec {item!r})"
+    if not os.path.isabs(path):
+        text += f"; relative paths are read from the current working directory {os.getcwd()!r}"
+    if "demo-" in os.path.basename(path):
+        text += "; these look like the demo shards: run `patchloom demo` first (it writes them to ./patchloom-demo)"
+    return text
 
 
 def shard_order(shards: Sequence[str], *, seed: int, epoch: int, shuffle: bool) -> list[str]:
@@ -111,21 +156,413 @@ def split_shards(shards: Sequence[str], *, slot: int, slots: int) -> list[ShardT
     return [ShardTask(shards[shard], part=slot // n, parts=parts)]
 
 
-def open_shard(url: str, *, allow_shell: bool = False):
-    """A binary stream for a shard: local files directly, other URLs through webdataset's gopen."""
-    if url.startswith(SHELL_PREFIXES) and not allow_shell:
-        raise SourceError(f"refusing shell-command shard {url!r}; pass allow_shell=True (--allow-shell) to allow it")
-    if url.startswith(SHELL_PREFIXES):
-        import subprocess
+URL_TIMEOUT_S = 60.0  # seconds a stalled HTTP(S) connection may stay silent before the shard fails
+PIPE_EXIT_TIMEOUT_S = 60.0  # seconds a `pipe:` command may take to exit once its output has ended
 
+
+class _PipeStream:
+    """The output of a `pipe:` command; its exit status is checked once the output has ended."""
+
+    def __init__(self, url: str) -> None:
+        self.url = url
+        self.command = url.removeprefix("pipe:")
+        self._stderr = tempfile.TemporaryFile()  # a file, not a pipe: a chatty command cannot block on it
         # The caller allowed shell commands explicitly (allow_shell=True).
-        proc = subprocess.Popen(url.removeprefix("pipe:"), shell=True, stdout=subprocess.PIPE)  # noqa: S602
-        return proc.stdout
-    if "://" not in url:
-        return open(url.removeprefix("file:"), "rb")
-    from webdataset import gopen
+        self.proc = subprocess.Popen(self.command, shell=True, stdout=subprocess.PIPE,  # noqa: S602
+                                     stderr=self._stderr)
+        self.closed = False
 
-    return gopen.gopen(url, "rb")
+    def read(self, n: int = -1) -> bytes:
+        return self.proc.stdout.read(n)  # type: ignore[union-attr]
+
+    def seekable(self) -> bool:
+        return False
+
+    def check_exit(self) -> None:
+        """Call after the output ended: a non-zero exit status raises ShardError naming the command."""
+        try:
+            status = self.proc.wait(timeout=PIPE_EXIT_TIMEOUT_S)
+        except subprocess.TimeoutExpired:
+            raise _shard_error(self.url, f"the command {self.command!r} closed its output but did not "
+                                         f"exit within {PIPE_EXIT_TIMEOUT_S:.0f} s") from None
+        if status != 0:
+            raise _shard_error(self.url, f"the command {self.command!r} exited with status {status}"
+                                         f"{self._stderr_tail()}")
+
+    def _stderr_tail(self, limit: int = 300) -> str:
+        try:
+            size = self._stderr.seek(0, os.SEEK_END)
+            self._stderr.seek(max(0, size - limit))
+            text = self._stderr.read().decode("utf-8", "replace").strip()
+        except OSError:
+            return ""
+        return f" (stderr: {'...' if size > limit else ''}{text})" if text else ""
+
+    def close(self) -> None:
+        """Close the output; a command still running (we stopped early) is killed."""
+        if self.closed:
+            return
+        self.closed = True
+        self.proc.stdout.close()  # type: ignore[union-attr]
+        if self.proc.poll() is None:
+            self.proc.kill()
+        self.proc.wait()
+        self._stderr.close()
+
+
+def open_shard(url: str, *, allow_shell: bool = False):
+    """A binary stream for a shard: local files directly, http(s) through urllib, `pipe:` commands
+    (only when allowed), other schemes through webdataset's gopen. Failing to open is a ShardError."""
+    if url.startswith(SHELL_PREFIXES):
+        if not allow_shell:
+            raise SourceError(f"refusing shell-command shard {url!r}; pass allow_shell=True (--allow-shell) "
+                              "to allow it")
+        try:
+            return _PipeStream(url)
+        except OSError as exc:
+            raise _shard_error(url, f"cannot start the command ({exc})") from exc
+    if "://" not in url:
+        try:
+            return open(url.removeprefix("file:"), "rb")
+        except OSError as exc:
+            raise _shard_error(url, f"cannot open ({exc.strerror or exc})") from exc
+    scheme = url.split("://", 1)[0].lower()
+    if scheme in ("http", "https"):
+        import urllib.error
+        import urllib.request
+
+        try:
+            return urllib.request.urlopen(url, timeout=URL_TIMEOUT_S)  # noqa: S310 (http/https only)
+        except urllib.error.HTTPError as exc:
+            raise _shard_error(url, f"the server answered HTTP {exc.code} {exc.reason}") from exc
+        except (urllib.error.URLError, OSError, ValueError) as exc:
+            raise _shard_error(url, f"cannot connect ({getattr(exc, 'reason', exc)})") from exc
+    from webdataset.gopen import gopen  # a function (webdataset >= 0.2); imports torch when installed
+
+    try:
+        return gopen(url, "rb")
+    except Exception as exc:  # noqa: BLE001 (any scheme handler's failure is this shard's failure)
+        raise _shard_error(url, f"cannot open ({exc}); for a store without a built-in reader, give a "
+                                f"command as the shard, e.g. 'pipe:aws s3 cp {url} -', with allow_shell") from exc
+
+
+# --------------------------------------------------------------------------- streaming tar reader
+
+TAR_BLOCK = 512
+_ZERO_BLOCK = bytes(TAR_BLOCK)
+_READ_CHUNK = 16 << 20  # a member is read in pieces of at most this (a header may declare any size)
+_SKIP_CHUNK = 1 << 20  # bytes streamed past are dropped in pieces of this
+_META_LIMIT = 1 << 20  # pax and GNU long-name headers larger than this are refused (real ones: < 1 KiB)
+_TRAILER_LIMIT = 1 << 20  # bytes looked at after the end-of-archive marker
+# Member types (POSIX ustar typeflag) that carry no data blocks, as Python's tarfile reads them:
+# hard link, symlink, character and block device, directory, FIFO.
+_NO_DATA_TYPES = frozenset((b"1", b"2", b"3", b"4", b"5", b"6"))
+_REGULAR_TYPES = frozenset((b"0", b"\0", b"7"))
+_KEY_EXT = re.compile(r"^((?:.*/|)[^.]+)[.]([^/]*)$")  # webdataset's base_plus_ext: key up to the first dot
+_META_NAME = re.compile(r"__[^/]*__($|/)")  # webdataset skips such names (shard-level metadata)
+# Compressed-stream magic numbers, strict enough that no plain tar (which starts with a member
+# name) is taken for one: gzip with deflate, bzip2 with its block header, xz.
+_COMPRESSED = (
+    (re.compile(rb"\x1f\x8b\x08"), "gzip"),
+    (re.compile(rb"BZh[1-9]1AY&SY", re.DOTALL), "bz2"),
+    (re.compile(rb"\xfd7zXZ\x00"), "lzma"),
+)
+
+
+def _escaped(name: str) -> str:
+    """A member name decoded with surrogateescape -> a valid str, non-UTF-8 bytes as `\\xNN`."""
+    return name.encode("utf-8", "surrogateescape").decode("utf-8", "backslashreplace")
+
+
+def split_member_name(name: str) -> tuple[str | None, str | None]:
+    """(key, extension) of a member name as webdataset splits it: key = path up to the first dot of
+    the file name, extension = the rest, lower-cased; (None, None) for a name without a dot."""
+    match = _KEY_EXT.match(name)
+    if not match:
+        return None, None
+    return match.group(1), match.group(2).lower()
+
+
+class _Chain:
+    """A stream with some bytes already read from it put back in front."""
+
+    def __init__(self, head: bytes, rest) -> None:
+        self.head, self.rest = head, rest
+
+    def read(self, n: int = -1) -> bytes:
+        if not self.head:
+            return self.rest.read(n)
+        if n < 0:
+            out, self.head = self.head + self.rest.read(), b""
+            return out
+        out, self.head = self.head[:n], self.head[n:]
+        return out
+
+    def readable(self) -> bool:
+        return True
+
+
+@dataclass(slots=True)
+class _Member:
+    name: str  # escaped (valid UTF-8)
+    size: int
+    regular: bool  # a regular file (others: directories, links, devices, unknown types)
+
+
+class _TarReader:
+    """Walks the members of a tar stream (plain, gzip, bzip2 or xz) one header at a time, reading a
+    member's data only when asked and streaming past the rest. Every failure is a ShardError."""
+
+    def __init__(self, raw, url: str) -> None:
+        self.url, self.raw = url, raw
+        self.pos = 0  # bytes of the uncompressed tar consumed
+        self.count = 0  # member headers read
+        self.last = ""  # name of the last member header
+        self._left = 0  # data + padding bytes of the current member not read yet
+        self._eof = False  # the stream has been read to its end
+        head = self._raw_head(10)
+        kind = next((mod for magic, mod in _COMPRESSED if magic.match(head)), None)
+        self._end: int | None = None  # file size when `raw` is a seekable plain file
+        if kind is None:
+            self._src = _Chain(head, raw)
+            try:
+                if raw.seekable():
+                    self._end = os.fstat(raw.fileno()).st_size
+            except (AttributeError, OSError, ValueError):
+                self._end = None
+        else:
+            import bz2
+            import gzip
+            import lzma
+
+            opener = {"gzip": lambda f: gzip.GzipFile(fileobj=f, mode="rb"), "bz2": bz2.BZ2File,
+                      "lzma": lzma.LZMAFile}[kind]
+            self._src = opener(_Chain(head, raw))
+
+    def _raw_head(self, n: int) -> bytes:
+        parts: list[bytes] = []
+        got = 0
+        while got < n:
+            try:
+                chunk = self.raw.read(n - got)
+            except Exception as exc:  # noqa: BLE001 (any I/O failure of this shard)
+                raise _shard_error(self.url, f"read failed ({type(exc).__name__}: {exc})") from exc
+            if not chunk:
+                break
+            parts.append(chunk)
+            got += len(chunk)
+        return b"".join(parts)
+
+    # -- low-level reads: at most n bytes, fewer only at the end of the stream
+    def _read(self, n: int) -> bytes:
+        parts: list[bytes] = []
+        got = 0
+        while got < n and not self._eof:
+            try:
+                chunk = self._src.read(min(n - got, _READ_CHUNK))
+            except Exception as exc:  # noqa: BLE001 (I/O, decompression: all are this shard's failure)
+                raise self._error(f"reading byte {self.pos + got} failed ({type(exc).__name__}: {exc}); "
+                                  "the shard is cut off or corrupt") from exc
+            if not chunk:
+                self._eof = True
+                break
+            parts.append(chunk)
+            got += len(chunk)
+        self.pos += got
+        return parts[0] if len(parts) == 1 else b"".join(parts)
+
+    def _skip(self, n: int) -> int:
+        """Stream past n bytes without keeping them (a seek on a plain local file); returns how many."""
+        if n <= 0:
+            return 0
+        if self._end is not None and not self._src.head:
+            try:
+                here = self.raw.tell()
+                k = max(0, min(n, self._end - here))
+                self.raw.seek(here + k)
+            except (OSError, ValueError) as exc:
+                raise self._error(f"seeking in the shard failed ({exc})") from exc
+            self.pos += k
+            if k < n:
+                self._eof = True
+            return k
+        done = 0
+        while done < n:
+            got = len(self._read(min(n - done, _SKIP_CHUNK)))
+            done += got
+            if not got:
+                break
+        return done
+
+    def _error(self, reason: str) -> ShardError:
+        return _shard_error(self.url, reason)
+
+    def _where(self) -> str:
+        if not self.count:
+            return "before its first member"
+        key, _ = split_member_name(self.last)
+        return f"after member {self.count} / " + (f"key {key!r}" if key is not None else repr(self.last))
+
+    def _cut(self, what: str) -> ShardError:
+        """The stream ended early; a failed command is named as the cause when there is one."""
+        cause = ""
+        if isinstance(self.raw, _PipeStream):
+            try:
+                self.raw.check_exit()
+            except ShardError as exc:
+                cause = str(exc).removeprefix(f"shard {self.url}: ") + "; "
+        if self.pos == 0 and not what:
+            return self._error(f"{cause}the shard is empty (0 bytes): not a tar file")
+        return self._error(f"{cause}{what or 'the shard ends without the tar end-of-archive blocks'}: "
+                           f"it was cut off ({self._where()})")
+
+    # -- members
+    def next(self) -> _Member | None:
+        """The next member, or None at the end-of-archive marker. The data of the previous member
+        that was not read is streamed past first."""
+        if self._left:
+            left, self._left = self._left, 0
+            if self._skip(left) < left:
+                raise self._cut(f"unexpected end of data in member {self.last!r}")
+        pax: dict[str, bytes] = {}
+        long_name: str | None = None
+        while True:
+            at = self.pos
+            buf = self._read(TAR_BLOCK)
+            if not buf:
+                raise self._cut("")
+            if len(buf) < TAR_BLOCK:
+                raise self._cut(f"the shard ends inside a tar header at byte {at}")
+            if buf == _ZERO_BLOCK:
+                # POSIX.1-2017, pax, "ustar Interchange Format": "At the end of the archive file there
+                # shall be two 512-octet logical records filled with binary zeros, interpreted as an
+                # end-of-archive indicator." Writers often pad further with zero blocks (to tar's
+                # 10240-byte record). Like GNU tar and Python's tarfile we stop at the first zero
+                # block, and require at least that one: a tar with none was cut off. A lone zero block
+                # at the very end is accepted (every member before it is whole); `finish` checks
+                # that no second tar follows.
+                return None
+            try:
+                info = tarfile.TarInfo.frombuf(buf, "utf-8", "surrogateescape")
+            except Exception as exc:  # noqa: BLE001 (tarfile's header errors; any is a corrupt header)
+                what = "is not a tar file" if at == 0 else f"has a corrupt tar header at byte {at}"
+                raise self._error(f"the shard {what} ({exc}; {self._where()})") from exc
+            kind, size = info.type, info.size
+            if size < 0:
+                raise self._error(f"the tar header at byte {at} declares a negative size ({size})")
+            if kind in (b"x", b"X", b"g"):  # pax extended header (g: global, ignored)
+                records = _parse_pax(self._meta(size, at, "pax header"), self, at)
+                if kind != b"g":
+                    pax.update(records)
+                continue
+            if kind in (b"L", b"K"):  # GNU long name / long link name
+                data = self._meta(size, at, "GNU long-name header")
+                if kind == b"L":
+                    long_name = data.split(b"\0", 1)[0].decode("utf-8", "surrogateescape")
+                continue
+            name = info.name
+            if long_name is not None:
+                name = long_name
+            if b"path" in pax:
+                name = pax[b"path"].decode("utf-8", "surrogateescape")
+            name = _escaped(name)
+            if kind == b"S" or any(k.startswith(b"GNU.sparse.") for k in pax):
+                raise self._error(f"member {name!r} at byte {at} is a GNU sparse file; patchloom reads "
+                                  "plain members only (write the shard without --sparse)")
+            if b"size" in pax:
+                raw_size = pax[b"size"]
+                if not raw_size.isdigit() or len(raw_size) > 20:
+                    raise self._error(f"the pax header at byte {at} has a bad size {raw_size[:30]!r}")
+                size = int(raw_size)
+            has_data = kind not in _NO_DATA_TYPES
+            self._left = (size + TAR_BLOCK - 1) // TAR_BLOCK * TAR_BLOCK if has_data else 0
+            self.count += 1
+            self.last = name
+            return _Member(name=name, size=size if has_data else 0, regular=kind in _REGULAR_TYPES)
+
+    def _meta(self, size: int, at: int, what: str) -> bytes:
+        if size > _META_LIMIT:
+            raise self._error(f"the {what} at byte {at} declares {size} bytes (over {_META_LIMIT}): corrupt tar")
+        padded = (size + TAR_BLOCK - 1) // TAR_BLOCK * TAR_BLOCK
+        data = self._read(padded)
+        if len(data) < padded:
+            raise self._cut(f"unexpected end of data in the {what} at byte {at}")
+        return data[:size]
+
+    def read_data(self, member: _Member) -> bytes:
+        """The current member's bytes (call after `next` returned it, at most once)."""
+        data = self._read(member.size)
+        if len(data) < member.size:
+            self._left = 0
+            raise self._cut(f"unexpected end of data in member {member.name!r}")
+        self._left -= member.size
+        return data
+
+    def finish(self) -> None:
+        """After the end marker: a second tar glued on after it would be lost silently, so a tar
+        header in what follows is an error (other bytes there are ignored, as tar readers do: some
+        writers leave garbage after the end). Then the exit status of a `pipe:` command."""
+        tail_at, seen, scanning = self.pos, 0, True  # tail_at is block-aligned, chunks are whole blocks
+        while seen <= _TRAILER_LIMIT:
+            chunk = self._read(_SKIP_CHUNK)
+            if not chunk:
+                break
+            if scanning and chunk.count(0) != len(chunk):
+                off = (len(chunk) - len(chunk.lstrip(b"\0"))) // TAR_BLOCK * TAR_BLOCK
+                if _is_tar_header(chunk[off:off + TAR_BLOCK]):
+                    raise self._error(f"a tar member header follows the end-of-archive blocks (at byte "
+                                      f"{tail_at + seen + off}); what follows is not read. Two tars joined "
+                                      "into one file? Write each as its own shard")
+                scanning = False
+            seen += len(chunk)
+        if self._eof and isinstance(self.raw, _PipeStream):
+            self.raw.check_exit()
+
+
+def _is_tar_header(block: bytes) -> bool:
+    try:
+        tarfile.TarInfo.frombuf(block, "utf-8", "surrogateescape")
+    except Exception:  # noqa: BLE001 (not a valid header, whatever tarfile says is wrong with it)
+        return False
+    return True
+
+
+def _parse_pax(data: bytes, reader: _TarReader, at: int) -> dict[bytes, bytes]:
+    """Records `LEN key=value\\n` of a pax extended header."""
+    out: dict[bytes, bytes] = {}
+    pos = 0
+    while pos < len(data) and data[pos:].strip(b"\0"):  # tolerate NUL padding after the last record
+        space = data.find(b" ", pos, pos + 21)
+        digits = data[pos:space] if space > pos else b""
+        end = pos + int(digits) if digits.isdigit() else -1
+        if end <= space or end > len(data) or data[end - 1:end] != b"\n" or b"=" not in data[space + 1:end]:
+            raise reader._error(f"the pax header at byte {at} is malformed (record at offset {pos})")
+        key, _, value = data[space + 1:end - 1].partition(b"=")
+        out[key] = value
+        pos = end
+    return out
+
+
+@dataclass(slots=True)
+class _Sample:
+    """A sample being read: the members so far, or the reason it is skipped."""
+
+    key: str
+    index: int
+    keep: bool
+    members: dict[str, bytes] = field(default_factory=dict)
+    names: dict[str, str] = field(default_factory=dict)  # extension -> member name
+    size: int = 0
+    error: str | None = None
+
+    def record(self, url: str) -> Record:
+        if self.error is not None:
+            return Record(self.key, url, self.index, {}, error=self.error)
+        return Record(self.key, url, self.index, self.members)
+
+    def broken(self, url: str, exc: Exception) -> Record:
+        reason = str(exc).removeprefix(f"shard {url}: ")
+        return Record(self.key, url, self.index, {}, error=f"shard broke off inside this sample ({reason})")
 
 
 def read_shard(
@@ -134,87 +571,108 @@ def read_shard(
     allow_shell: bool = False,
     start: int = 0,
     wanted: set[int] | None = None,
+    max_sample_bytes: int | None = None,
 ) -> Iterator[Record]:
     """Records of one shard task, in tar order, with their index within the shard.
 
     Samples before `start`, of other readers' parts, or (when given) not in `wanted` are skipped by
     file name, so their bytes are never copied out of the tar stream (cheap resume and splits).
+    A sample with a repeated member, or over `max_sample_bytes` by its tar headers (the bytes are
+    streamed past, never loaded), comes out as a Record with `error` set and reading goes on. A
+    shard that is cut off (no end-of-archive blocks), corrupt, unreachable or whose `pipe:` command
+    fails raises ShardError, after the sample it broke off in came out as an error Record.
     """
-    # Imported here: importing webdataset also imports torch when it is installed (seconds).
-    from collections import deque
-
-    from webdataset.tariterators import base_plus_ext, group_by_keys, tar_file_iterator
-
-    chosen: deque[tuple[str, int]] = deque()  # (key, index) of selected samples, in tar order
-    last = {"key": None, "index": -1, "keep": False}
-
-    def select(fname: str) -> bool:
-        key, _ = base_plus_ext(fname)
-        if key is None:
-            return False
-        if key != last["key"]:
-            last["key"], last["index"] = key, last["index"] + 1
-            i = last["index"]
-            last["keep"] = i >= start and i % task.parts == task.part and (wanted is None or i in wanted)
-            if last["keep"]:
-                chosen.append((key, i))
-        return last["keep"]
-
-    failure: dict[str, object] = {}
-
-    def guarded(files: Iterator[dict]) -> Iterator[dict]:
-        # A read error ends the member stream cleanly, so the grouping step still hands over the
-        # sample it holds; the error is re-raised below, after that sample is dealt with.
-        try:
-            yield from files
-        except Exception as exc:  # tar or I/O failure
-            failure.update(exc=exc, key=last["key"], index=last["index"], keep=last["keep"])
-
-    stream = open_shard(task.url, allow_shell=allow_shell)
+    if wanted is not None and not wanted:
+        return
+    last_wanted = max(wanted) if wanted is not None else None
+    url = task.url
+    raw = open_shard(url, allow_shell=allow_shell)
     try:
-        files = guarded(tar_file_iterator(stream, select_files=select))
-        files = ({**f, "__url__": task.url} for f in files)
-        held: Record | None = None
-        for sample in group_by_keys(files):
-            key = sample["__key__"]
-            while chosen and chosen[0][0] != key:  # a selected sample whose files all failed
-                chosen.popleft()
-            _, index = chosen.popleft()
-            members = {k: v for k, v in sample.items() if not k.startswith("__")}
-            if held is not None:
-                yield held
-            held = Record(key=key, url=task.url, index=index, members=members)
-            if wanted is not None and index >= max(wanted):
+        reader = _TarReader(raw, url)
+        sample: _Sample | None = None
+        index = -1
+        while True:
+            try:
+                member = reader.next()
+            except ShardError as exc:
+                if sample is not None and sample.keep:
+                    yield sample.broken(url, exc)
+                raise
+            if member is None:
                 break
-        broken = f"shard broke off inside this sample ({failure.get('exc')})"
-        if held is not None:
-            if failure and failure["key"] == held.key:
-                # The break came while this sample was being read: it may be missing members.
-                held = Record(held.key, held.url, held.index, {}, error=broken)
-            yield held
-        if failure and failure["keep"] and failure["key"] != (held.key if held else None):
-            # The sample being read when the shard broke off: skipped with a reason, never lost.
-            yield Record(str(failure["key"]), task.url, int(failure["index"]), {}, error=broken)  # type: ignore[arg-type]
-        if failure:
-            raise failure["exc"]  # type: ignore[misc]
+            if not member.regular or _META_NAME.match(member.name) or (
+                    "/" not in member.name and member.name.startswith("__") and member.name.endswith("__")):
+                continue
+            key, ext = split_member_name(member.name)
+            if key is None or ext is None:
+                continue  # no extension: not part of any sample (as webdataset)
+            if sample is None or key != sample.key:
+                if sample is not None and sample.keep:
+                    yield sample.record(url)
+                index += 1
+                if last_wanted is not None and index > last_wanted:
+                    return
+                keep = index >= start and index % task.parts == task.part and (wanted is None or index in wanted)
+                sample = _Sample(key, index, keep)
+            if not sample.keep or sample.error is not None:
+                continue  # streamed past by the next `next()`
+            if ext in sample.names:
+                sample.error = (f"duplicated member {ext!r} in sample {key!r} (members {sample.names[ext]!r} and "
+                                f"{member.name!r}); the sample is skipped, the rest of the shard is read")
+                sample.members = {}
+                continue
+            sample.names[ext] = member.name
+            if max_sample_bytes is not None and sample.size + member.size > max_sample_bytes:
+                sample.error = _oversize(sample, member, max_sample_bytes)
+                sample.members = {}
+                continue
+            try:
+                data = reader.read_data(member)
+            except ShardError as exc:
+                yield sample.broken(url, exc)
+                raise
+            sample.members[ext] = data
+            sample.size += len(data)
+        if sample is not None and sample.keep:
+            yield sample.record(url)
+        reader.finish()
     finally:
-        stream.close()
+        try:
+            raw.close()
+        except Exception:  # noqa: BLE001 (closing after a failure or an early stop: nothing left to report)
+            pass
 
 
-def fetch_records(refs: Sequence[tuple[str, int]], *, allow_shell: bool = False) -> list[Record]:
+def _oversize(sample: _Sample, member: _Member, limit: int) -> str:
+    advice = "raise it in the recipe if such samples are expected"
+    if member.size > limit:
+        return f"member {member.name!r} is {member.size} bytes, over source.max_sample_bytes={limit}; {advice}"
+    total = sample.size + member.size
+    return (f"sample {sample.key!r} reaches {total} bytes with member {member.name!r} ({member.size} bytes), "
+            f"over source.max_sample_bytes={limit}; {advice}")
+
+
+def fetch_records(refs: Sequence[tuple[str, int]], *, allow_shell: bool = False,
+                  max_sample_bytes: int | None = None) -> list[Record]:
     """The records at (shard url, index) positions, in the order given (to rebuild buffers on resume)."""
     by_url: dict[str, set[int]] = {}
     for url, index in refs:
         by_url.setdefault(url, set()).add(int(index))
     found: dict[tuple[str, int], Record] = {}
+    failures: dict[str, ShardError] = {}
     for url, indices in by_url.items():
-        for rec in read_shard(ShardTask(url), allow_shell=allow_shell, wanted=indices):
-            found[(url, rec.index)] = rec
+        try:
+            for rec in read_shard(ShardTask(url), allow_shell=allow_shell, wanted=indices,
+                                  max_sample_bytes=max_sample_bytes):
+                found[(url, rec.index)] = rec
+        except ShardError as exc:  # records read before the failure still count; missing ones raise below
+            failures[url] = exc
     missing = [ref for ref in refs if (ref[0], int(ref[1])) not in found]
     if missing:
+        cause = f" ({failures[missing[0][0]]})" if missing[0][0] in failures else ""
         raise SourceError(
             f"cannot resume: {len(missing)} buffered samples are no longer in their shards "
-            f"(first: shard {missing[0][0]}, sample #{missing[0][1]}); did the shards change?"
+            f"(first: shard {missing[0][0]}, sample #{missing[0][1]}){cause}; did the shards change?"
         )
     return [found[(url, int(index))] for url, index in refs]
 
@@ -224,17 +682,22 @@ def read_tasks(
     *,
     allow_shell: bool = False,
     on_shard_error: Callable[[str, Exception], None] | None = None,
+    max_sample_bytes: int | None = None,
 ) -> Iterator[Record]:
-    """Records of several shard tasks in order. A shard that fails mid-read raises, or is reported
-    to on_shard_error (the rest of that shard is lost and the callback records it)."""
+    """Records of several shard tasks in order. A shard that fails mid-read raises ShardError, or is
+    reported to on_shard_error (the rest of that shard is lost and the callback records it)."""
     for task in tasks:
         try:
-            yield from read_shard(task, allow_shell=allow_shell)
+            yield from read_shard(task, allow_shell=allow_shell, max_sample_bytes=max_sample_bytes)
+        except ShardError as exc:
+            if on_shard_error is None:
+                raise
+            on_shard_error(task.url, exc)
         except SourceError:
             raise
-        except Exception as exc:  # tar or I/O failure of this shard
+        except Exception as exc:  # noqa: BLE001 (an unforeseen failure of this shard)
             if on_shard_error is None:
-                raise SourceError(f"shard {task.url}: cannot read: {exc}") from exc
+                raise _shard_error(task.url, f"cannot read: {exc}") from exc
             on_shard_error(task.url, exc)
 
 
@@ -310,10 +773,12 @@ class ReaderCursor:
         on_shard_error: Callable[[str, Exception], None] | None = None,
         cycle: bool = False,
         limit: int | None = None,
+        max_sample_bytes: int | None = None,
     ) -> None:
         self.tasks = list(tasks)
         self.allow_shell = allow_shell
         self.on_shard_error = on_shard_error
+        self.max_sample_bytes = max_sample_bytes
         self.cycle = cycle
         self.limit = limit
         self.pass_ = 0
@@ -338,7 +803,8 @@ class ReaderCursor:
             while self.task < len(self.tasks):
                 task = self.tasks[self.task]
                 try:
-                    for rec in read_shard(task, allow_shell=self.allow_shell, start=self.index):
+                    for rec in read_shard(task, allow_shell=self.allow_shell, start=self.index,
+                                          max_sample_bytes=self.max_sample_bytes):
                         self.index = rec.index + 1
                         self.count += 1
                         produced += 1
@@ -347,11 +813,15 @@ class ReaderCursor:
                         yield rec
                         if self.done:
                             return
+                except ShardError as exc:  # this shard failed: raise, or report it and go on
+                    if self.on_shard_error is None:
+                        raise
+                    self.on_shard_error(task.url, exc)
                 except SourceError:
                     raise
-                except Exception as exc:  # tar or I/O failure of this shard
+                except Exception as exc:  # noqa: BLE001 (an unforeseen failure of this shard)
                     if self.on_shard_error is None:
-                        raise SourceError(f"shard {task.url}: cannot read: {exc}") from exc
+                        raise _shard_error(task.url, f"cannot read: {exc}") from exc
                     self.on_shard_error(task.url, exc)
                 self.task, self.index = self.task + 1, 0
             if self.limit is not None and self.count >= self.limit:
@@ -360,3 +830,48 @@ class ReaderCursor:
                 self.done = True  # one pass, or a share with nothing in it: cannot top up
             else:
                 self.pass_, self.task, self.index = self.pass_ + 1, 0, 0
+
+
+# --------------------------------------------------------------------------- resume identity
+
+
+def shard_identity(url: str) -> dict:
+    """What a saved state remembers of a shard to notice it changed: its URL, and for a local file
+    its size and modification time (None where unknown: URLs, `pipe:` commands, missing files)."""
+    out: dict = {"url": url, "size": None, "mtime": None}
+    if "://" in url or url.startswith(SHELL_PREFIXES):
+        return out
+    try:
+        st = os.stat(os.path.expanduser(url.removeprefix("file:")))
+    except OSError:
+        return out
+    out.update(size=int(st.st_size), mtime=float(st.st_mtime))
+    return out
+
+
+def describe_identity_change(saved: Sequence[dict], now: Sequence[dict]) -> str | None:
+    """One line naming the first difference between two lists of `shard_identity` (reordered,
+    swapped, rewritten or gone), or None when they match."""
+    then_urls = [str(s.get("url")) for s in saved]
+    now_urls = [str(s.get("url")) for s in now]
+    if then_urls != now_urls:
+        i = next((k for k, (a, b) in enumerate(zip(then_urls, now_urls)) if a != b), min(len(then_urls), len(now_urls)))
+        then_at = then_urls[i] if i < len(then_urls) else "(none)"
+        now_at = now_urls[i] if i < len(now_urls) else "(none)"
+        if sorted(then_urls) == sorted(now_urls):
+            kind = "was reordered"
+        elif len(then_urls) != len(now_urls):
+            kind = f"changed from {len(then_urls)} to {len(now_urls)} shards"
+        else:
+            kind = "has a different shard"
+        return (f"the shard list {kind} since the state was saved (position {i}: {then_at} then, "
+                f"{now_at} now)")
+    for a, b in zip(saved, now):
+        for name in ("size", "mtime"):
+            old, new = a.get(name), b.get(name)
+            if old == new:
+                continue
+            if new is None:
+                return f"shard {a.get('url')} can no longer be read ({name} {old} when the state was saved)"
+            return f"shard {a.get('url')} was rewritten since the state was saved ({name} {old} -> {new})"
+    return None
