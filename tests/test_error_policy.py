@@ -11,6 +11,7 @@ import pytest
 
 from patchloom import Pipeline, Recipe, SampleError, SkipRatioError
 from patchloom.cli import main
+from patchloom.pipeline import EmptyEpochError
 
 from conftest import encode_png, random_image, write_shard
 
@@ -48,9 +49,13 @@ def test_skip_ratio_under_the_limit_passes(tmp_path):
 
 def test_sample_byte_limit(tmp_path):
     shard = shard_with(tmp_path, good=3, bad=0)
-    pipe, emitted = run(Recipe.from_dict({**BASE, "source": {"max_sample_bytes": 100}}), shard)
-    assert emitted == 0
-    assert all("max_sample_bytes" in s.reason and s.stage == "select" for s in pipe.ledger.skipped)
+    pipe = Pipeline(Recipe.from_dict({**BASE, "source": {"max_sample_bytes": 100}}), shard)
+    # Every sample is over the limit: the epoch yields nothing, which is an error, not silence.
+    with pytest.raises(EmptyEpochError, match="3 samples read, all skipped"):
+        list(pipe)
+    assert pipe.ledger.emitted == 0 and len(pipe.ledger.skipped) == 3
+    # Refused from the tar header by the reader (stage read), or after reading (stage select).
+    assert all("max_sample_bytes" in s.reason and s.stage in ("read", "select") for s in pipe.ledger.skipped)
 
 
 def test_ledger_jsonl_from_the_command_line(tmp_path, capsys):
@@ -67,8 +72,8 @@ def test_ledger_jsonl_from_the_command_line(tmp_path, capsys):
 
 def test_skips_are_logged_with_a_rate_limit(tmp_path, caplog):
     shard = shard_with(tmp_path, good=0, bad=40)
-    with caplog.at_level(logging.WARNING, logger="patchloom"):
-        run(Recipe.from_dict({**BASE, "source": {"max_skip_ratio": None}}), shard)
+    with caplog.at_level(logging.WARNING, logger="patchloom"), pytest.raises(EmptyEpochError):
+        run(Recipe.from_dict({**BASE, "source": {"max_skip_ratio": None}}), shard)  # nothing good: empty
     messages = [r.getMessage() for r in caplog.records if r.name == "patchloom"]
     assert sum(m.startswith("skipped shard") for m in messages) == 5
     assert 1 <= sum("more samples skipped" in m for m in messages) <= 2  # not one line per sample

@@ -9,16 +9,17 @@ from .batch import PackedBatch
 from .decode import DecodeError
 from .packing import Packer, pack
 from .patches import PatchSet, patchify, unpatchify
-from .pipeline import Ledger, Pipeline, SampleError, SkipRatioError, image_to_patches
+from .pipeline import EmptyEpochError, Ledger, Pipeline, SampleError, SkipRatioError, image_to_patches
 from .recipe import Recipe, RecipeError
 from .sizing import SizePlan, plan_size
-from .sources import SourceError, expand_shards
+from .sources import ShardError, SourceError, expand_shards
 from .store import read_packed
 
 __version__ = "0.1.0"
 
 __all__ = [
     "DecodeError",
+    "EmptyEpochError",
     "Ledger",
     "PackedBatch",
     "Packer",
@@ -27,6 +28,7 @@ __all__ = [
     "Recipe",
     "RecipeError",
     "SampleError",
+    "ShardError",
     "SizePlan",
     "SkipRatioError",
     "SourceError",

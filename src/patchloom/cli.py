@@ -13,6 +13,7 @@ from pathlib import Path
 
 from tqdm import tqdm
 
+from .extras import as_missing_extra
 from .pipeline import Pipeline, SampleError, SkipRatioError
 from .recipe import Recipe, RecipeError
 from .sources import SourceError
@@ -33,6 +34,8 @@ DEMO_RECIPE = {
 def _stream(recipe: Recipe, *, shards, epoch: int, rank: int, world_size: int, max_batches: int | None,
             progress: bool, title: str, allow_shell: bool = False,
             ledger_path: str | None = None) -> tuple[RunStats, dict]:
+    """Run one reader's epoch, printing the summary table (also when a data error stops the run,
+    so the failed shards and skip reasons are on screen above the error)."""
     pipe = Pipeline(recipe, shards=shards, rank=rank, world_size=world_size, epoch=epoch, allow_shell=allow_shell)
     stats = RunStats()
     bar = tqdm(desc="packing", unit=" img", disable=not progress, file=sys.stderr, dynamic_ncols=True)
@@ -40,9 +43,13 @@ def _stream(recipe: Recipe, *, shards, epoch: int, rank: int, world_size: int, m
         for batch in pipe:
             stats.add(batch)
             bar.update(batch.num_images)
-            bar.set_postfix(batches=stats.batches, skipped=len(pipe.ledger.skipped), refresh=False)
+            bar.set_postfix(batches=stats.batches, skipped=pipe.ledger.skipped_count, refresh=False)
             if max_batches is not None and stats.batches >= max_batches:
                 break
+    except (SourceError, SampleError, SkipRatioError):
+        bar.close()
+        print(format_table(stats, pipe.ledger.to_dict(), title=f"{title}  (stopped by the error below)"))
+        raise
     finally:
         bar.close()
         if ledger_path:
@@ -212,6 +219,12 @@ def main(argv: list[str] | None = None) -> int:
             return args.func(args)
     except (RecipeError, SourceError, SampleError, SkipRatioError) as err:
         print(f"patchloom: error: {err}", file=sys.stderr)
+        return 2
+    except ImportError as err:
+        message = as_missing_extra(err)
+        if message is None:
+            raise
+        print(f"patchloom: error: {message}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("patchloom: interrupted", file=sys.stderr)

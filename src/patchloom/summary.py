@@ -48,13 +48,21 @@ class RunStats:
         }
 
 
+#: Failed shards the summary names one by one; the rest are counted (the --ledger file lists all).
+SHARD_ERRORS_SHOWN = 3
+
+
 def format_table(stats: RunStats, ledger: dict, *, title: str = "patchloom run") -> str:
-    """The summary block printed by `patchloom run` and `patchloom demo`."""
+    """The summary block printed by `patchloom run` and `patchloom demo` (ledger: Ledger.to_dict())."""
     s = stats.to_dict()
+    errors = list(ledger.get("shard_errors", []))
+    failed = int(ledger.get("shards_failed", len(errors)))
+    opened = ledger.get("shards_read")
     rows = [
         ("images read", f"{ledger['read']}"),
         ("images emitted", f"{ledger['emitted']}"),
         ("images skipped", f"{ledger['skipped']}"),
+        ("shards failed", f"{failed}" + (f" of {opened}" if opened else "")),
         ("batches", f"{s['batches']}"),
         ("tokens / image", f"mean {s['tokens_mean']:.1f}  p5 {s['tokens_p5']:.0f}  p95 {s['tokens_p95']:.0f}"),
         ("padding", f"{s['padding_pct']:.1f} %"),
@@ -68,6 +76,8 @@ def format_table(stats: RunStats, ledger: dict, *, title: str = "patchloom run")
     for reason, n in sorted(ledger.get("skip_reasons", {}).items()):
         eg = ", ".join(examples.get(reason, []))
         lines.append(f"  {'skipped':<{width}}  {n} x {reason}" + (f"  (e.g. {eg})" if eg else ""))
-    for err in ledger.get("shard_errors", []):
+    for err in errors[:SHARD_ERRORS_SHOWN]:
         lines.append(f"  {'shard error':<{width}}  {err}")
+    if len(errors) > SHARD_ERRORS_SHOWN:
+        lines.append(f"  {'':<{width}}  and {len(errors) - SHARD_ERRORS_SHOWN} more (--ledger FILE lists them all)")
     return "\n".join(lines)

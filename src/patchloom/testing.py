@@ -38,12 +38,35 @@ def batches_equal(a: PackedBatch, b: PackedBatch) -> str | None:
     return None
 
 
+#: The ledger counts a resumed run must end with exactly as the uninterrupted run did.
+LEDGER_COUNTS = ("read", "emitted", "skipped", "in_buffer", "repeated", "skip_reasons", "shards_read",
+                 "shards_failed")
+
+
+def check_ledger_balance(pipe: Pipeline, where: str) -> None:
+    """Assert `read == emitted + skipped + in_buffer` for a pipeline between batches."""
+    led = pipe.ledger
+    if led.read != led.emitted + led.skipped_count + pipe.in_buffer:
+        raise AssertionError(
+            f"{where}: ledger does not balance: read {led.read} != emitted {led.emitted} + skipped "
+            f"{led.skipped_count} + in buffer {pipe.in_buffer}"
+        )
+
+
+def ledger_counts(pipe: Pipeline) -> dict:
+    """The counts of a pipeline's ledger that a resume must reproduce."""
+    d = pipe.ledger.to_dict()
+    return {k: d[k] for k in LEDGER_COUNTS}
+
+
 def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> ResumeReport:
     """Run a pipeline through, then restore from its state at every `every`-th batch (from 0 to the
     end, inclusive) in a fresh pipeline and require the rest to match byte for byte.
 
-    The state goes through JSON on the way, as it would in a checkpoint. Raises AssertionError
-    naming the position, batch and field of the first difference.
+    The ledger must balance (`read == emitted + skipped + in_buffer`) after every batch of every
+    run, and each resumed run must end with the uninterrupted run's ledger counts. The state goes
+    through JSON on the way, as it would in a checkpoint. Raises AssertionError naming the position,
+    batch and field (or ledger count) of the first difference.
     """
     if every < 1:
         raise ValueError("every must be >= 1")
@@ -55,11 +78,14 @@ def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> Re
     states[0] = json.dumps(pipe.state_dict())
     for batch in pipe:
         full.append(batch)
+        check_ledger_balance(pipe, f"full run, batch {len(full) - 1}")
         if len(full) % every == 0:
             t = time.perf_counter()
             states[len(full)] = json.dumps(pipe.state_dict())
             report.state_seconds.append(time.perf_counter() - t)
     states[len(full)] = json.dumps(pipe.state_dict())
+    check_ledger_balance(pipe, "full run, end")
+    final = ledger_counts(pipe)
     report.full_seconds = time.perf_counter() - t0
     report.batches = len(full)
     for pos, text in sorted(states.items()):
@@ -72,7 +98,11 @@ def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> Re
         report.load_seconds.append(time.perf_counter() - t)
         if first is not None:
             rest.append(first)
-            rest.extend(it)
+            check_ledger_balance(resumed, f"resumed at batch {pos}, batch {pos}")
+            for batch in it:
+                rest.append(batch)
+                check_ledger_balance(resumed, f"resumed at batch {pos}, batch {pos + len(rest) - 1}")
+        check_ledger_balance(resumed, f"resumed at batch {pos}, end")
         if len(rest) != len(full) - pos:
             raise AssertionError(
                 f"resumed at batch {pos}: got {len(rest)} more batches, the full run had {len(full) - pos}"
@@ -81,6 +111,13 @@ def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> Re
             diff = batches_equal(a, b)
             if diff is not None:
                 raise AssertionError(f"resumed at batch {pos}: batch {pos + i} differs in {diff}")
+        counts = ledger_counts(resumed)
+        if counts != final:
+            diff = next(k for k in LEDGER_COUNTS if counts[k] != final[k])
+            raise AssertionError(
+                f"resumed at batch {pos}: the ledger ends with {diff}={counts[diff]!r}, the full run "
+                f"with {final[diff]!r}"
+            )
         report.positions.append(pos)
         report.state_bytes.append(len(text))
     return report

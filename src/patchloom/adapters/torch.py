@@ -3,6 +3,12 @@
 Use it with `DataLoader(ds, batch_size=None, num_workers=N)`: every item is already a packed,
 fixed-shape batch. A sample's tokens do not depend on num_workers (per-sample RNG rule); which
 images share a batch does, since each worker packs its own share.
+
+Ledgers: under a PackedLoader every worker sends its ledger counts (and its newly skipped samples)
+home with each batch, and once more when its share ends, so `PackedLoader.ledger` covers the whole
+rank and the loader judges `source.max_skip_ratio` and an empty epoch over all workers together, in
+the main process. Under a plain DataLoader each worker judges the guard over its own share only,
+and cannot tell an empty epoch from a worker that legitimately got nothing.
 """
 
 from __future__ import annotations
@@ -19,8 +25,12 @@ except ImportError as exc:  # pragma: no cover - exercised only without the extr
         "(on CPU-only machines install torch first, e.g. pip install torch==2.13.0)"
     ) from exc
 
-from ..pipeline import Pipeline
+from ..pipeline import Ledger, Pipeline, Skip, check_not_empty, check_skip_guard, check_state_version
 from ..recipe import Recipe
+from ..sources import describe_identity_change, shard_identity, split_shards
+
+#: Version of PackedLoader.state_dict() (2: shard identities kept once, worker states of version 2).
+LOADER_STATE_VERSION = 2
 
 
 def _worker_init() -> None:
@@ -56,7 +66,7 @@ class PackedDataset(IterableDataset):
         self._resume: dict[str, Any] | None = None
         self._track_state = False
         # Validate the shard spec now, in the main process, so errors surface before workers start.
-        Pipeline(recipe, shards, rank, world_size, epoch, allow_shell=allow_shell)
+        self.urls = Pipeline(recipe, shards, rank, world_size, epoch, allow_shell=allow_shell).shards
 
     def set_epoch(self, epoch: int) -> None:
         """Call before each epoch; with persistent_workers the workers see it on their next pass."""
@@ -78,20 +88,33 @@ class PackedDataset(IterableDataset):
         # After a resume, DataLoader worker 0 continues the slot that was due next, so the
         # round-robin order of batches continues exactly where it stopped.
         slot = (wid + (resume["next_slot"] if resume else 0)) % num_workers
+        # Under a PackedLoader the main process judges the skip guard and emptiness over all workers.
         pipe = Pipeline(self.recipe, self.shards, self.rank, self.world_size, self.epoch,
-                        worker=slot, num_workers=num_workers, allow_shell=self.allow_shell)
+                        worker=slot, num_workers=num_workers, allow_shell=self.allow_shell,
+                        guard=not self._track_state)
         if resume is not None and str(slot) in resume["slots"]:
-            pipe.load_state_dict(resume["slots"][str(slot)])
+            pipe.load_state_dict({**resume["slots"][str(slot)], "shards": resume["shards"]})
         return pipe
 
     def __iter__(self) -> Iterator[Any]:
         pipe = self.pipeline_for_this_worker()
+        if not self._track_state:
+            for batch in pipe:
+                yield batch.to_torch() if self.as_tensors else batch
+            return
+        sent = 0
+
+        def item(batch: Any) -> dict[str, Any]:
+            # The worker's state (ledger counts included) and the skips new since the last item.
+            nonlocal sent
+            new = pipe.ledger.skipped[sent:]
+            sent += len(new)
+            return {"_slot": pipe.worker, "_state": pipe.state_dict(with_shards=False),
+                    "_skips": [[s.shard, s.key, s.stage, s.reason] for s in new], "batch": batch}
+
         for batch in pipe:
-            out = batch.to_torch() if self.as_tensors else batch
-            if self._track_state:
-                yield {"_slot": pipe.worker, "_state": pipe.state_dict(), "batch": out}
-            else:
-                yield out
+            yield item(batch.to_torch() if self.as_tensors else batch)
+        yield item(None)  # the share ended: its final ledger goes home even if it made no batch
 
 
 class PackedLoader:
@@ -100,6 +123,10 @@ class PackedLoader:
     Each batch carries its worker's state to the main process; `state_dict()` gathers the states
     of the batches you have consumed, so a trainer can save it with its checkpoint. Call
     `load_state_dict()` before iterating (with persistent workers: before the first iteration).
+
+    `ledger` merges the workers' ledgers. The loader judges `source.max_skip_ratio` over it after
+    every batch (SkipRatioError), and at the end of the epoch the shard share and emptiness
+    (EmptyEpochError when no worker got a sample through).
     """
 
     def __init__(self, dataset: PackedDataset, *, num_workers: int = 0, persistent_workers: bool = False,
@@ -114,8 +141,11 @@ class PackedLoader:
                                   persistent_workers=persistent_workers and num_workers > 0, **loader_kwargs)
         self._started = False
         self._slots: dict[str, dict] = {}
+        self._skips: list[Skip] = []
         self._next_slot = 0
         self._epoch = dataset.epoch
+        self._identities: list[dict[str, Any]] | None = None
+        self._planned: int | None = None
 
     def set_epoch(self, epoch: int) -> None:
         self.dataset.set_epoch(epoch)
@@ -124,26 +154,78 @@ class PackedLoader:
         resume = self.dataset._resume
         if resume is None or resume["epoch"] != self.dataset.epoch:
             self._slots, self._next_slot = {}, 0
+        self._skips = []
         it = iter(self._loader)
         self._started = True
         self._epoch = self.dataset.epoch
         if self.num_workers > 0:
             self.dataset._resume = None  # the workers hold their copies now
         n = max(1, self.num_workers)
+        limit = self.dataset.recipe.source.max_skip_ratio
         for item in it:
             slot = int(item["_slot"])
             self._slots[str(slot)] = item["_state"]
+            self._skips.extend(Skip(*s) for s in item["_skips"])
             self._next_slot = (slot + 1) % n
-            yield item["batch"]
+            check_skip_guard(self._counts(), limit, final=False)
+            if item["batch"] is not None:
+                yield item["batch"]
+        led = self._counts()
+        check_skip_guard(led, limit, final=True)
+        rank = f" on rank {self.dataset.rank} of {self.dataset.world_size}" if self.dataset.world_size > 1 else ""
+        check_not_empty(led, shards=len(self.dataset.urls),
+                        where=f"epoch {self._epoch}{rank} ({n} DataLoader workers together)")
+
+    @property
+    def ledger(self) -> Ledger:
+        """The workers' ledgers merged: counts from their latest states, skips as they arrived."""
+        merged = self._counts()
+        merged.skipped = list(self._skips)
+        return merged
+
+    def _counts(self) -> Ledger:
+        """The merged counts alone (judged after every batch, so without copying the skip list)."""
+        merged = Ledger.merged([Ledger.from_state(self._slots[k]["ledger"]) for k in sorted(self._slots, key=int)])
+        merged.shards_planned = self._shards_planned()
+        return merged
+
+    def _shards_planned(self) -> int:
+        """Shard tasks of all this rank's workers, also those not heard from yet (for the guard's
+        early verdict, which must hold for the whole rank)."""
+        if self._planned is None:
+            ds, n = self.dataset, max(1, self.num_workers)
+            self._planned = sum(len(split_shards(ds.urls, slot=ds.rank * n + w, slots=ds.world_size * n))
+                                for w in range(n))
+        return self._planned
+
+    def shard_identities(self) -> list[dict[str, Any]]:
+        """The shards' identities, kept once in the loader state for all workers."""
+        if self._identities is None:
+            self._identities = [shard_identity(u) for u in self.dataset.urls]
+        return self._identities
 
     def state_dict(self) -> dict[str, Any]:
-        """JSON-able: the epoch, worker count, and each worker's position after its last consumed batch."""
-        return {"version": 1, "epoch": self._epoch, "num_workers": max(1, self.num_workers),
-                "slots": dict(self._slots), "next_slot": self._next_slot}
+        """JSON-able: the epoch, worker count, the shards' identities, and each worker's position
+        (and ledger counts) after its last consumed batch."""
+        return {"version": LOADER_STATE_VERSION, "epoch": self._epoch, "num_workers": max(1, self.num_workers),
+                "shards": self.shard_identities(), "slots": dict(self._slots), "next_slot": self._next_slot}
 
     def load_state_dict(self, state: dict[str, Any]) -> None:
-        if state.get("version") != 1:
-            raise ValueError(f"unknown loader state version {state.get('version')!r}")
+        """Resume from `state_dict()`; refuses another worker count, an older state, or changed shards."""
+        version = state.get("version")
+        if version != LOADER_STATE_VERSION:
+            old = isinstance(version, int) and 0 < version < LOADER_STATE_VERSION
+            raise ValueError(
+                f"loader state version {version!r} " + ("was saved by an older patchloom and cannot be resumed: "
+                                                        "start the epoch afresh" if old else
+                                                        f"is unknown (this patchloom reads {LOADER_STATE_VERSION})")
+            )
+        for slot_state in state["slots"].values():
+            check_state_version(slot_state.get("version"))
+        change = describe_identity_change(state["shards"], self.shard_identities())
+        if change is not None:
+            raise ValueError(f"the shards differ from the ones this state was saved over: {change}. Resume over "
+                             "the same shard list with the files unchanged, or start the epoch afresh")
         if state["num_workers"] != max(1, self.num_workers):
             raise ValueError(
                 f"state was saved with {state['num_workers']} workers, this loader has {max(1, self.num_workers)}: "

@@ -236,7 +236,7 @@ def collect(recipe: Recipe, *, shards=None, epoch: int = 0, samples: int = 12, s
             last_rows = batch.rows
             if len(kept) < keep_batches:
                 kept.append(batch)
-            bar.set_postfix(batches=run.batches, skipped=len(pipe.ledger.skipped), refresh=False)
+            bar.set_postfix(batches=run.batches, skipped=pipe.ledger.skipped_count, refresh=False)
     finally:
         bar.close()
 
