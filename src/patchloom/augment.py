@@ -63,6 +63,8 @@ from typing import Any, Literal
 
 import numpy as np
 
+from .extras import require
+
 Stage = Literal["before", "after"]
 STAGES: tuple[Stage, ...] = ("before", "after")
 _STAGE_ID = {"before": 0, "after": 1}
@@ -100,9 +102,7 @@ _CACHE_MAX = 32
 def _albumentations() -> Any:
     """Import albumentations with its network update check turned off."""
     os.environ.setdefault("NO_ALBUMENTATIONS_UPDATE", "1")
-    import albumentations
-
-    return albumentations
+    return require("albumentations", "the recipe's augment section")
 
 
 def _registry() -> dict[str, type]:

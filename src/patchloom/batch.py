@@ -117,7 +117,7 @@ class PackedBatch:
             "grids": torch.from_numpy(self.grids),
             "labels": torch.from_numpy(self.labels),
             "keys": self.keys,
-            **({"masked": torch.from_numpy(self.masked)} if self.masked is not None else {}),
+            "masked": None if self.masked is None else torch.from_numpy(self.masked),
         }
 
     def to_arrays(self) -> dict[str, np.ndarray]:

@@ -1,0 +1,49 @@
+"""Optional dependencies: which extra brings which module, and one clear error when it is missing."""
+
+from __future__ import annotations
+
+import importlib
+from types import ModuleType
+
+#: Importable module -> the patchloom extra that installs it.
+EXTRAS: dict[str, str] = {
+    "albumentations": "augment",
+    "cv2": "augment",
+    "matplotlib": "report",
+    "torch": "torch",
+    "ray": "ray",
+}
+
+
+class MissingExtraError(ImportError):
+    """An optional package is not installed; the message names the extra that brings it."""
+
+
+def missing_extra_message(module: str, purpose: str = "") -> str:
+    """One line saying which extra to install for `module` (top-level name)."""
+    top = module.split(".", 1)[0]
+    extra = EXTRAS.get(top)
+    why = f" for {purpose}" if purpose else ""
+    if extra is None:
+        return f"the package {top!r} is needed{why} but is not installed: pip install {top}"
+    hint = " (on CPU-only machines install torch==2.13.0 first)" if extra == "torch" else ""
+    return f"the optional package {top!r} is needed{why} but is not installed: pip install 'patchloom[{extra}]'{hint}"
+
+
+def require(module: str, purpose: str = "") -> ModuleType:
+    """Import `module`, or raise MissingExtraError naming the extra to install."""
+    try:
+        return importlib.import_module(module)
+    except ModuleNotFoundError as exc:
+        if exc.name != module.split(".", 1)[0]:
+            raise  # the package is there but a part or a dependency of it is broken: show that
+        raise MissingExtraError(missing_extra_message(module, purpose)) from exc
+
+
+def as_missing_extra(exc: BaseException) -> str | None:
+    """The one-line message for a ModuleNotFoundError of a known optional package, else None."""
+    if isinstance(exc, MissingExtraError):
+        return str(exc)
+    if isinstance(exc, ModuleNotFoundError) and exc.name and exc.name.split(".", 1)[0] in EXTRAS:
+        return missing_extra_message(exc.name)
+    return None
