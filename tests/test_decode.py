@@ -682,3 +682,41 @@ def test_reduce_to_is_in_display_orientation():
 def test_reduce_to_ignored_for_png():
     data = _encode(Image.fromarray(_block_image()), "PNG")
     assert open_image(data, pixel_limit=10_000).decode(reduce_to=(2, 3)).size == (16, 24)
+
+
+# ----------------------------------------------------------------------------- row bands
+
+
+@pytest.fixture
+def small_bands(monkeypatch):
+    """Row bands of 7 pixels, so a 13x11 image is converted in 13 bands (one row each)."""
+    import patchloom.decode as dec
+
+    monkeypatch.setattr(dec, "_BAND_PIXELS", 7)
+    return dec
+
+
+def test_banded_composite_equals_the_whole_image_formula(small_bands):
+    rng = np.random.default_rng(5)
+    c = rng.integers(0, 256, (13, 11, 3), dtype=np.uint8)
+    a = rng.integers(0, 256, (13, 11), dtype=np.uint8)
+    a[0, 0], a[0, 1] = 0, 255
+    bg = (255, 0, 37)
+    expect = (c.astype(np.int64) * a[..., None] + np.array(bg) * (255 - a[..., None].astype(np.int64)) + 127) // 255
+    out = np.asarray(small_bands._composite(Image.fromarray(c), a, bg))
+    assert np.array_equal(out, expect.astype(np.uint8))
+
+
+def test_banded_16bit_and_float_scaling_equal_the_whole_image_formulas(small_bands):
+    rng = np.random.default_rng(6)
+    v = rng.integers(-1000, 70000, (13, 11), dtype=np.int32)  # mode I: out-of-range values clamp
+    expect = (np.clip(v.astype(np.int64), 0, 65535) * 255 + 32767) // 65535
+    assert np.array_equal(small_bands._scale_16bit(v), expect.astype(np.uint8))
+    f = rng.random((13, 11)).astype(np.float32)
+    f[0, :3] = [np.nan, np.inf, -np.inf]
+    # 0..1 data: scaled by 255; then a value over 1 in the last band only makes the whole image 0..255
+    expect_01 = np.clip(np.rint(np.nan_to_num(f.astype(np.float64), nan=0, posinf=1, neginf=0) * 255), 0, 255)
+    assert np.array_equal(small_bands._scale_float(f), expect_01.astype(np.uint8))
+    f[-1, -1] = 200.0
+    expect_255 = np.clip(np.rint(np.nan_to_num(f.astype(np.float64), nan=0, posinf=255, neginf=0)), 0, 255)
+    assert np.array_equal(small_bands._scale_float(f), expect_255.astype(np.uint8))

@@ -55,13 +55,13 @@ def decode_quality(recipe: Recipe, *, shards: str | list[str] | None = None, max
             break
         try:
             _ext, data = find_image(rec, recipe.source.image_keys)
-            opened = open_image(data, pixel_limit=limit)
+            opened = open_image(data, pixel_limit=limit, memory_limit=recipe.decode.memory_limit)
             if opened.format != "JPEG":
                 continue
             plan = plan_for(opened.height, opened.width, recipe, seed=recipe.seed, epoch=0, key=rec.key)
             hint = _reduce_hint(opened, plan) if recipe.decode.reduced_jpeg else None
             image = opened.decode(background=bg, reduce_to=hint)
-            full = open_image(data, pixel_limit=limit).decode(background=bg)
+            full = open_image(data, pixel_limit=limit, memory_limit=recipe.decode.memory_limit).decode(background=bg)
         except Exception:  # noqa: BLE001 - a broken sample is counted, not measured
             failed += 1
             continue

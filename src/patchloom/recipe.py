@@ -24,21 +24,71 @@ import difflib
 import hashlib
 import json
 import math
+import os
+import re
+import stat
 import types
 import typing
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    StrictBool,
+    StrictFloat,
+    StrictInt,
+    ValidationError,
+    ValidationInfo,
+    field_validator,
+    model_validator,
+)
 
 RECIPE_VERSION = 1
 RESAMPLE_FILTERS = ("nearest", "box", "bilinear", "hamming", "bicubic", "lanczos")
 DEFAULT_IMAGE_KEYS = ["jpg", "jpeg", "png", "webp", "gif", "bmp", "tif", "tiff"]
 
 
+#: Largest seed: seeds feed numpy's SeedSequence (any size works there) and are written into
+#: manifests and resume states, so they are kept to what a signed 64-bit integer holds.
+MAX_SEED = 2**63 - 1
+
+#: Cap on the arrays of one packed batch (patches, segment ids, coords, grids, labels, mask), so a
+#: recipe that would allocate more fails at `recipe check` instead of in the middle of a run.
+MAX_BATCH_BYTES = 4 << 30
+
+#: Default of decode.memory_limit; the same number as patchloom.decode.MEMORY_LIMIT (not imported,
+#: so reading a recipe does not load the image decoders).
+DEFAULT_DECODE_MEMORY = 1 << 30
+
+#: Largest finite value of each float output dtype (numpy.finfo(dtype).max).
+FLOAT_MAX = {"float16": 65504.0, "float32": 3.4028234663852886e38}
+
+#: Bytes per value of each output dtype.
+DTYPE_BYTES = {"uint8": 1, "float16": 2, "float32": 4}
+
+#: File names `extends` may load.
+RECIPE_SUFFIXES = (".yaml", ".yml")
+
+
 class RecipeError(ValueError):
     """A recipe that cannot be used; the message names the file and the key path."""
+
+
+class _AtKey(ValueError):
+    """A cross-field problem raised by a model validator, reported at the key `path` (from the
+    top of the recipe) instead of at the section that found it."""
+
+    def __init__(self, path: tuple[str, ...], message: str) -> None:
+        super().__init__(message)
+        self.path = path
+
+
+# Numbers and switches are strict (StrictInt, StrictFloat, StrictBool): YAML `true` is not the
+# number 1, `7.0` or `1.0e+11` is not an integer, "16" in quotes is not a number, and 1 is not
+# true. An integer is still accepted where a number is wanted (max_skip_ratio: 1).
 
 
 class _Section(BaseModel):
@@ -52,19 +102,23 @@ class SourceConfig(_Section):
     shards: str | list[str] | None = None
     label_key: str | None = "cls"
     image_keys: list[str] = Field(default_factory=lambda: list(DEFAULT_IMAGE_KEYS))
-    shuffle_shards: bool = True
-    shuffle_buffer: int = Field(default=0, ge=0)
+    shuffle_shards: StrictBool = True
+    shuffle_buffer: StrictInt = Field(default=0, ge=0)
     on_error: Literal["skip", "raise"] = "skip"
-    max_skip_ratio: float | None = Field(default=0.05, ge=0.0, le=1.0)
-    max_sample_bytes: int = Field(default=100_000_000, ge=1)
+    max_skip_ratio: StrictFloat | None = Field(default=0.05, ge=0.0, le=1.0)
+    max_sample_bytes: StrictInt = Field(default=100_000_000, ge=1)
 
 
 class DecodeConfig(_Section):
     """How bytes become RGB pixels."""
 
-    pixel_limit: int = Field(default=64_000_000, ge=1)
-    reduced_jpeg: bool = True  # let the JPEG decoder skip detail the size plan will discard
-    background: tuple[int, int, int] = (255, 255, 255)
+    pixel_limit: StrictInt = Field(default=64_000_000, ge=1)
+    # Bytes one decode may hold (decoded pixels plus the RGB conversion, alpha compositing and
+    # rotation buffers), judged from the header: an 8000x8000 16-bit RGBA PNG passes pixel_limit
+    # yet needs about 1.4 GB. See patchloom.decode.decode_memory.
+    memory_limit: StrictInt = Field(default=DEFAULT_DECODE_MEMORY, ge=1)
+    reduced_jpeg: StrictBool = True  # let the JPEG decoder skip detail the size plan will discard
+    background: tuple[StrictInt, StrictInt, StrictInt] = (255, 255, 255)
 
     @field_validator("background")
     @classmethod
@@ -77,9 +131,9 @@ class DecodeConfig(_Section):
 class SampledTokens(_Section):
     """Distribution of the per-image token budget in `sampled` sizing mode."""
 
-    range: tuple[int, int] | None = None
-    choices: list[int] | None = None
-    weights: list[float] | None = None
+    range: tuple[StrictInt, StrictInt] | None = None
+    choices: list[StrictInt] | None = None
+    weights: list[StrictFloat] | None = None
 
     @model_validator(mode="after")
     def _one_kind(self) -> SampledTokens:
@@ -106,11 +160,11 @@ class SampledTokens(_Section):
 class SizingConfig(_Section):
     """How each image's patch grid is chosen."""
 
-    patch_size: int = Field(default=16, ge=1, le=1024)
-    max_tokens: int = Field(default=256, ge=1)
-    min_tokens: int = Field(default=1, ge=1)
+    patch_size: StrictInt = Field(default=16, ge=1, le=1024)
+    max_tokens: StrictInt = Field(default=256, ge=1)
+    min_tokens: StrictInt = Field(default=1, ge=1)
     mode: Literal["budget", "native", "fixed", "sampled"] = "budget"
-    max_aspect: float | None = Field(default=None, ge=1.0)
+    max_aspect: StrictFloat | None = Field(default=None, ge=1.0)
     aspect_rule: Literal["crop", "pad"] = "crop"
     resample: Literal["nearest", "box", "bilinear", "hamming", "bicubic", "lanczos"] = "bicubic"
     sampled: SampledTokens | None = None
@@ -141,8 +195,8 @@ class CropConfig(_Section):
     """
 
     mode: Literal["none", "random"] = "none"
-    scale: tuple[float, float] = (0.35, 1.0)
-    ratio: tuple[float, float] = (3 / 4, 4 / 3)
+    scale: tuple[StrictFloat, StrictFloat] = (0.35, 1.0)
+    ratio: tuple[StrictFloat, StrictFloat] = (3 / 4, 4 / 3)
 
     @model_validator(mode="after")
     def _ranges(self) -> CropConfig:
@@ -160,15 +214,15 @@ class DropConfig(_Section):
 
     mode: Literal["none", "random", "block", "grid", "stripes", "content"] = "none"
     apply: Literal["drop", "mask"] = "drop"
-    rate: float | None = Field(default=None, ge=0.0, le=1.0)
-    beta: tuple[float, float] | None = None
-    max_keep: int | None = Field(default=None, ge=1)
-    rate_curve: list[tuple[int, float]] | None = None
-    min_keep: int = Field(default=1, ge=0)
-    stride: int | None = Field(default=None, ge=1)
-    block_min_area: int = Field(default=16, ge=1)
-    block_aspect: tuple[float, float] = (0.3, 1 / 0.3)
-    content_noise: float = Field(default=0.1, ge=0.0)
+    rate: StrictFloat | None = Field(default=None, ge=0.0, le=1.0)
+    beta: tuple[StrictFloat, StrictFloat] | None = None
+    max_keep: StrictInt | None = Field(default=None, ge=1)
+    rate_curve: list[tuple[StrictInt, StrictFloat]] | None = None
+    min_keep: StrictInt = Field(default=1, ge=0)
+    stride: StrictInt | None = Field(default=None, ge=1)
+    block_min_area: StrictInt = Field(default=16, ge=1)
+    block_aspect: tuple[StrictFloat, StrictFloat] = (0.3, 1 / 0.3)
+    content_noise: StrictFloat = Field(default=0.1, ge=0.0)
 
     @model_validator(mode="after")
     def _one_rate(self) -> DropConfig:
@@ -206,20 +260,20 @@ class PatchOp(_Section):
     (per-patch brightness/contrast), shuffle (token order; coords travel), noise (Gaussian)."""
 
     name: Literal["standardize", "jitter", "shuffle", "noise"]
-    p: float = Field(default=1.0, ge=0.0, le=1.0)
-    brightness: float = Field(default=0.1, ge=0.0)
-    contrast: float = Field(default=0.1, ge=0.0)
-    sigma: float = Field(default=8.0, ge=0.0)
-    eps: float = Field(default=1e-6, gt=0.0)
+    p: StrictFloat = Field(default=1.0, ge=0.0, le=1.0)
+    brightness: StrictFloat = Field(default=0.1, ge=0.0)
+    contrast: StrictFloat = Field(default=0.1, ge=0.0)
+    sigma: StrictFloat = Field(default=8.0, ge=0.0)
+    eps: StrictFloat = Field(default=1e-6, gt=0.0)
 
 
 class PackingConfig(_Section):
     """How PatchSets are packed into fixed-shape rows."""
 
-    seq_len: int = Field(default=1024, ge=1)
-    rows: int = Field(default=8, ge=1)
-    max_images_per_row: int = Field(default=16, ge=1)
-    buffer: int = Field(default=64, ge=1)
+    seq_len: StrictInt = Field(default=1024, ge=1)
+    rows: StrictInt = Field(default=8, ge=1)
+    max_images_per_row: StrictInt = Field(default=16, ge=1)
+    buffer: StrictInt = Field(default=64, ge=1)
     # largest_first (first fit decreasing over the look-ahead buffer, with a wait cap) left the least
     # padding in `patchloom bench --packing`; first_fit keeps arrival order within rows.
     algorithm: Literal["largest_first", "first_fit", "best_fit", "in_order"] = "largest_first"
@@ -231,9 +285,9 @@ class EpochConfig(_Section):
     re-reading its own share (counted in the ledger), so every rank yields the same count and
     distributed training never waits on a rank that ran dry."""
 
-    batches: int | None = Field(default=None, ge=1)
-    samples: int | None = Field(default=None, ge=1)
-    equalize: bool = False
+    batches: StrictInt | None = Field(default=None, ge=1)
+    samples: StrictInt | None = Field(default=None, ge=1)
+    equalize: StrictBool = False
 
     @model_validator(mode="after")
     def _one_unit(self) -> EpochConfig:
@@ -248,22 +302,44 @@ class OutputConfig(_Section):
     """dtype of the patch array and the normalisation for float outputs."""
 
     dtype: Literal["uint8", "float32", "float16"] = "uint8"
-    mean: tuple[float, float, float] = (0.5, 0.5, 0.5)
-    std: tuple[float, float, float] = (0.5, 0.5, 0.5)
+    mean: tuple[StrictFloat, StrictFloat, StrictFloat] = (0.5, 0.5, 0.5)
+    std: tuple[StrictFloat, StrictFloat, StrictFloat] = (0.5, 0.5, 0.5)
 
     @field_validator("std")
     @classmethod
-    def _positive(cls, v: tuple[float, float, float]) -> tuple[float, float, float]:
+    def _positive(cls, v: tuple[float, float, float], info: ValidationInfo) -> tuple[float, float, float]:
         if min(v) <= 0:
             raise ValueError(f"std values must be > 0 (got {list(v)})")
+        dtype, mean = info.data.get("dtype"), info.data.get("mean")
+        if dtype in FLOAT_MAX and mean is not None:
+            _check_overflow(dtype, mean, v)
         return v
+
+
+def _check_overflow(dtype: str, mean: tuple[float, ...], std: tuple[float, ...]) -> None:
+    """Refuse mean/std whose (x/255 - mean)/std leaves `dtype`'s finite range for some x in 0..255.
+
+    Only overflow is checked (values that would become inf, then NaN in training); a std small
+    enough to cost float16 precision without overflowing is allowed."""
+    top = FLOAT_MAX[dtype] * (1 - 1e-6)  # the float32 arithmetic may round a hair above the exact value
+    for i, (m, s) in enumerate(zip(mean, std)):
+        reach = max(abs(m), abs(1 - m)) / s  # the extremes are at x = 0 and x = 255
+        if not reach <= top:
+            need = max(abs(m), abs(1 - m)) / top
+            wider = dtype == "float16" and reach <= FLOAT_MAX["float32"] * (1 - 1e-6)
+            raise ValueError(
+                f"with output.dtype {dtype}, (x/255 - mean)/std reaches {reach:.3g} in channel {i} "
+                f"(mean {m:g}, std {s:g}), past {dtype}'s largest finite value {FLOAT_MAX[dtype]:g}, so "
+                f"batches would hold inf/NaN; raise std[{i}] to at least {need:.3g}"
+                f"{' or use output.dtype float32' if wider else ''} (got {list(std)})"
+            )
 
 
 class Recipe(_Section):
     """A whole preprocessing run. Build with `from_file`, `from_dict`, or keyword arguments."""
 
     version: Literal[1] = 1
-    seed: int = 0
+    seed: StrictInt = Field(default=0, ge=0, le=MAX_SEED)
     source: SourceConfig = Field(default_factory=SourceConfig)
     decode: DecodeConfig = Field(default_factory=DecodeConfig)
     crop: CropConfig = Field(default_factory=CropConfig)
@@ -297,6 +373,22 @@ class Recipe(_Section):
             raise ValueError(
                 f"sizing.max_tokens must be <= packing.seq_len (got {self.sizing.max_tokens} > "
                 f"{self.packing.seq_len}): an image bigger than a row could never be packed"
+            )
+        tokens, slots, per_token = batch_bytes(self)
+        if tokens + slots > MAX_BATCH_BYTES:
+            p = self.packing
+            rows = _show(p.rows)
+            if slots > tokens:
+                key, what = "max_images_per_row", f"{rows} rows x {_show(p.max_images_per_row)} images x 16 bytes"
+            else:
+                key = "seq_len"
+                what = f"{rows} rows x {_show(p.seq_len)} tokens x {per_token}, plus grids and labels"
+            size = tokens + slots
+            shown = f"{size / (1 << 30):,.1f} GiB" if size.bit_length() < 1000 else f"{_show(size)} bytes"
+            raise _AtKey(
+                ("packing", key),
+                f"one batch would take {shown} ({what}), over the {MAX_BATCH_BYTES >> 30} GiB cap per batch; "
+                f"lower packing.rows or packing.{key} (got {_show(getattr(p, key))})",
             )
         names = [op.name for op in self.patch_ops]
         if "standardize" in names:
@@ -346,6 +438,11 @@ class Recipe(_Section):
             if type(v) is not int or v != RECIPE_VERSION:
                 where = _where(("version",), provenance, origin)
                 raise RecipeError(f"{origin}: invalid recipe\n  {where}version: {_version_message(v)}")
+        unusable = _unusable_value(data)
+        if unusable is not None:
+            loc, msg = unusable
+            where = _where(loc, provenance, origin)
+            raise RecipeError(f"{origin}: invalid recipe\n  {where}{_path_text(loc)}: {msg}")
         try:
             return cls.model_validate(data)
         except ValidationError as exc:
@@ -376,6 +473,22 @@ class Recipe(_Section):
         return Recipe.from_dict(data)
 
 
+def batch_bytes(recipe: Recipe) -> tuple[int, int, str]:
+    """Bytes of one packed batch's arrays under `recipe` (what packing.build_batch allocates): the
+    per-token arrays, the per-image-slot arrays, and the bytes a token in words. Per token: patches
+    [B, L, D] in output.dtype, segment ids [B, L] int32, coords [B, L, 2] int32, and the mask
+    [B, L] bool under drop apply: mask; per slot: grids [B, S, 2] int32 and labels [B, S] int64."""
+    values = recipe.sizing.patch_size**2 * 3
+    itemsize = DTYPE_BYTES[recipe.output.dtype]
+    masked = recipe.drop.mode != "none" and recipe.drop.apply == "mask"
+    token = values * itemsize + 4 + 8 + (1 if masked else 0)
+    slot = 8 + 8
+    p = recipe.packing
+    words = (f"({values} patch values x {itemsize} byte{'s' if itemsize > 1 else ''} of {recipe.output.dtype} "
+             f"+ 12 bytes of segment id and coords{' + 1 of mask' if masked else ''})")
+    return p.rows * p.seq_len * token, p.rows * p.max_images_per_row * slot, words
+
+
 def _version_message(v: Any) -> str:
     newer = type(v) is int and v > RECIPE_VERSION
     hint = "; a recipe written for a newer format needs a newer patchloom" if newer else ""
@@ -388,6 +501,7 @@ def _version_message(v: Any) -> str:
 MAX_RECIPE_BYTES = 1 << 20  # a recipe is a page of settings; anything near this is not one
 MAX_RECIPE_NODES = 100_000  # values after expanding aliases (stops alias bombs before they expand)
 MAX_RECIPE_DEPTH = 64  # nesting of mappings and lists
+MAX_NUMBER_CHARS = 64  # an integer written longer than this is kept as _LongNumber, never converted
 
 _YAML_TAG_PREFIX = "tag:yaml.org,2002:"
 _MERGE_TAG = _YAML_TAG_PREFIX + "merge"
@@ -446,6 +560,24 @@ def _refuse_tag(loader: _RecipeLoader, *args: Any) -> Any:
     raise _Refused(f"tag {tag!r} is refused: {why}", node.start_mark)
 
 
+class _LongNumber:
+    """Stands in for a YAML integer too long to convert (Python refuses over 4300 digits, and no
+    setting needs more than 19), so validation can name its key instead of failing in the loader."""
+
+    def __init__(self, text: str) -> None:
+        self.length = len(text)
+
+    def __repr__(self) -> str:
+        return f"a number {self.length} characters long"
+
+
+def _int_or_long(loader: _RecipeLoader, node: yaml.Node) -> int | _LongNumber:
+    text = loader.construct_scalar(node)
+    if len(text) > MAX_NUMBER_CHARS:
+        return _LongNumber(text)
+    return loader.construct_yaml_int(node)
+
+
 def _timestamp_as_text(loader: _RecipeLoader, node: yaml.Node) -> str:
     # YAML 1.1 reads an unquoted 2024-01-01 as a date; a recipe has no dates, so keep the text.
     return loader.construct_scalar(node)
@@ -455,6 +587,12 @@ _RecipeLoader.add_constructor(None, _refuse_tag)
 for _tag in _REFUSED_STD_TAGS:
     _RecipeLoader.add_constructor(_tag, _refuse_tag)
 _RecipeLoader.add_constructor(_YAML_TAG_PREFIX + "timestamp", _timestamp_as_text)
+_RecipeLoader.add_constructor(_YAML_TAG_PREFIX + "int", _int_or_long)
+# YAML 1.1 reads `1e-6` (no dot, or an unsigned exponent) as text; read it as the number it is, as
+# YAML 1.2 does, since numbers are strict (a float setting refuses text).
+_RecipeLoader.add_implicit_resolver(
+    _YAML_TAG_PREFIX + "float", re.compile(r"^[-+]?[0-9][0-9_]*(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"), list("-+0123456789")
+)
 # Python tags are not registered by the safe loader; listing them anyway keeps the refusal explicit.
 _RecipeLoader.add_multi_constructor(_YAML_TAG_PREFIX + "python/", _refuse_tag)
 
@@ -515,20 +653,28 @@ def _check_duplicates(loader: _RecipeLoader, node: yaml.MappingNode) -> None:
 
 
 def _load_yaml(path: Path) -> Any:
-    """Read one recipe file into plain data; every failure is a RecipeError naming the file."""
+    """Read one recipe file into plain data; every failure is a RecipeError naming the file.
+
+    At most MAX_RECIPE_BYTES + 1 bytes are read, so a device or a file that grows cannot fill memory."""
     try:
-        raw = path.read_bytes()
+        with path.open("rb") as f:
+            raw = f.read(MAX_RECIPE_BYTES + 1)
+            size = os.fstat(f.fileno()).st_size
     except OSError as exc:
         raise RecipeError(f"cannot read recipe {path}: {exc.strerror or exc}") from None
     if len(raw) > MAX_RECIPE_BYTES:
+        shown = size if size > MAX_RECIPE_BYTES else f"more than {MAX_RECIPE_BYTES}"
         raise RecipeError(
-            f"{path}: refused: {len(raw)} bytes is over the {MAX_RECIPE_BYTES >> 20} MiB limit for a recipe file"
+            f"{path}: refused: {shown} bytes is over the {MAX_RECIPE_BYTES >> 20} MiB limit for a recipe file"
         )
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise RecipeError(f"{path}: not UTF-8 text (bad byte at offset {exc.start})") from None
-    loader = _RecipeLoader(text)
+    try:
+        loader = _RecipeLoader(text)  # the reader refuses control characters here, before parsing
+    except yaml.reader.ReaderError as exc:
+        raise RecipeError(f"{path}: not valid YAML for a recipe: {_reader_problem(text, exc)}") from None
     try:
         node = loader.get_single_node()
         if node is None:
@@ -546,6 +692,16 @@ def _load_yaml(path: Path) -> Any:
         raise RecipeError(f"{path}: not valid YAML for a recipe: nested too deeply") from None
     finally:
         loader.dispose()
+
+
+def _reader_problem(text: str, exc: yaml.reader.ReaderError) -> str:
+    """PyYAML's refusal of a character, as line, column and what to do."""
+    pos = max(0, min(int(exc.position), len(text)))
+    line = text.count("\n", 0, pos) + 1
+    column = pos - (text.rfind("\n", 0, pos) + 1) + 1
+    code = exc.character if isinstance(exc.character, int) else ord(str(exc.character)[:1] or "\0")
+    return (f"line {line}, column {column}: control character U+{code:04X} is not allowed in a recipe; "
+            f"remove it")
 
 
 def _yaml_problem(exc: yaml.MarkedYAMLError) -> str:
@@ -588,14 +744,41 @@ def _resolve_file(path: Path, chain: tuple[Path, ...]) -> tuple[Any, Provenance]
             f"{path}: invalid recipe\n  extends: must be the path of a base recipe file, relative to this "
             f"file (got {_show(target)})"
         )
-    base_path = path.parent / target
-    if not base_path.is_file():
-        reason = "is a folder" if base_path.is_dir() else "no such file"
-        raise RecipeError(f"{path}: extends {target!r}: cannot read recipe {base_path}: {reason}")
+    base_path = _base_file(path, target)
     base, provenance = _resolve_file(base_path, (*chain, path))
     if base is None:
         base = {}
     return _merge(base, data, (), str(path), provenance), provenance
+
+
+def _base_file(path: Path, target: str) -> Path:
+    """The base file `extends: target` names, once it is known to be a recipe: a regular file (not a
+    device, pipe or folder) named .yaml or .yml, also after following links, within the size cap."""
+    def refuse(why: str) -> RecipeError:
+        return RecipeError(f"{path}: invalid recipe\n  extends: {why} (got {_show(target)})")
+
+    bad = _CONTROL.search(target)
+    if bad:
+        raise refuse(f"contains control character U+{ord(bad.group()):04X}; remove it")
+    base_path = path.parent / target
+    try:
+        real = base_path.resolve()
+    except (OSError, RuntimeError) as exc:  # a link loop
+        raise refuse(f"cannot be followed to a file ({exc})") from None
+    if base_path.suffix.lower() not in RECIPE_SUFFIXES or real.suffix.lower() not in RECIPE_SUFFIXES:
+        named = "" if real.name == base_path.name else f", a link to {real}"
+        raise refuse(f"must name a recipe file ending in .yaml or .yml{named}")
+    try:
+        info = base_path.stat()
+    except OSError:
+        info = None
+    if info is None or not stat.S_ISREG(info.st_mode):
+        reason = "no such file" if info is None else (
+            "is a folder" if stat.S_ISDIR(info.st_mode) else "is not a regular file (a device, pipe or socket)")
+        raise RecipeError(f"{path}: extends {target!r}: cannot read recipe {base_path}: {reason}")
+    if info.st_size > MAX_RECIPE_BYTES:
+        raise refuse(f"{base_path} is {info.st_size} bytes, over the {MAX_RECIPE_BYTES >> 20} MiB limit")
+    return base_path
 
 
 def _record_leaves(data: dict[str, Any], prefix: tuple[Any, ...], origin: str, provenance: Provenance) -> None:
@@ -654,13 +837,60 @@ def _where(loc: tuple[Any, ...], provenance: Provenance | None, origin: str) -> 
 # Error messages: one line per problem, naming the key path and what is allowed there.
 
 
+# C0 and C1 control characters (Unicode category Cc), tab and newline included: no setting needs
+# one, and printed in an error they could rewrite the terminal.
+_CONTROL = re.compile("[\x00-\x1f\x7f-\x9f]")
+
+
+def _unusable_value(data: Any) -> tuple[tuple[Any, ...], str] | None:
+    """(key path, problem) for the first value no setting can take whatever the schema says: a
+    string or key with a control character, or an integer too large for any setting. Checked
+    before validation so that the problem is reported at its key, in one line."""
+    stack: list[tuple[tuple[Any, ...], Any]] = [((), data)]
+    seen: set[int] = set()
+    while stack:
+        path, value = stack.pop()
+        if isinstance(value, str):
+            bad = _CONTROL.search(value)
+            if bad:
+                return path, (f"contains control character U+{ord(bad.group()):04X} at position {bad.start()}; "
+                              f"remove it (got {_show(value)})")
+        elif isinstance(value, _LongNumber) or (
+            isinstance(value, int) and not isinstance(value, bool) and abs(value) > MAX_SEED
+        ):
+            return path, (f"{_show(value)} is too large for any setting (seed takes 0..{MAX_SEED}; sizes and "
+                          f"counts are far smaller)")
+        elif isinstance(value, (dict, list, tuple)) and id(value) not in seen:
+            seen.add(id(value))
+            if isinstance(value, dict):
+                items = list(value.items())
+                for key, _ in items:
+                    bad = _CONTROL.search(key) if isinstance(key, str) else None
+                    if bad:
+                        return path, (f"key {_show(key)} contains control character U+{ord(bad.group()):04X}; "
+                                      f"remove it")
+            else:
+                items = list(enumerate(value))
+            stack.extend(((*path, k), v) for k, v in reversed(items))
+    return None
+
+
+def _path_text(path: tuple[Any, ...]) -> str:
+    return ".".join(str(p) for p in path)
+
+
+def _plain(ann: Any) -> Any:
+    """int for `Annotated[int, Strict()]` (StrictInt); the annotation itself otherwise."""
+    return typing.get_args(ann)[0] if typing.get_origin(ann) is Annotated else ann
+
+
 def _strip_none(ann: Any) -> Any:
-    """X for `X | None`; the annotation itself otherwise."""
+    """X for `X | None`; the annotation itself otherwise (strictness markers removed)."""
     if _is_union(ann):
         args = [a for a in typing.get_args(ann) if a is not type(None)]
         if len(args) == 1:
-            return args[0]
-    return ann
+            return _plain(args[0])
+    return _plain(ann)
 
 
 def _is_union(ann: Any) -> bool:
@@ -727,6 +957,7 @@ _WORDS: dict[Any, tuple[str, str]] = {
 
 def _describe(ann: Any, plural: bool = False) -> str:
     """What a value of this annotation looks like, in words."""
+    ann = _plain(ann)
     if ann in _WORDS:
         return _WORDS[ann][plural]
     origin = typing.get_origin(ann)
@@ -757,6 +988,8 @@ def _show(value: Any, limit: int = 60) -> str:
     """A value as a reader of the YAML file would write it, shortened."""
     if value is True or value is False:
         text = "true" if value else "false"
+    elif isinstance(value, int) and value.bit_length() > 128:  # repr() refuses over 4300 digits
+        text = f"a number of about {int(value.bit_length() * math.log10(2)) + 1} digits"
     elif value is None:
         text = "null"
     elif isinstance(value, (list, tuple)):
@@ -820,6 +1053,9 @@ def _problem(err: Any, data: Any, in_file: bool) -> tuple[tuple[Any, ...], str]:
     kind = err["type"]
     path, ann, at_union = _follow(tuple(err["loc"]))
     got = err.get("input")
+    cause = (err.get("ctx") or {}).get("error")
+    if isinstance(cause, _AtKey):
+        return cause.path, " ".join(str(cause).split())
     if at_union or (kind == "missing" and path and isinstance(path[-1], int)):
         if kind == "missing":
             path = path[:-1]
@@ -851,11 +1087,19 @@ def _problem(err: Any, data: Any, in_file: bool) -> tuple[tuple[Any, ...], str]:
         return path, f"must be a whole number (got {_show(got)})"
     if kind == "finite_number":
         return path, f"must be a finite number, not NaN or infinity (got {_show(got)})"
+    if kind == "int_type" and isinstance(got, float) and not isinstance(got, bool):
+        if got.is_integer():
+            return path, f"must be an integer, written without a decimal point or exponent (got {_show(got)})"
+        return path, f"must be a whole number (got {_show(got)})"
     if kind in _TYPE_ERRORS:
         what = _describe(ann) if ann is not None else err["msg"].replace("Input should be ", "")
+        if kind in ("int_type", "float_type") and isinstance(got, bool):
+            what += ", not true/false"
         msg = f"must be {what} (got {_show(got)})"
         if kind == "string_type" and isinstance(got, (bool, int, float)):
             msg += f"; {_QUOTE_HINT}"
+        elif kind in ("int_type", "float_type") and isinstance(got, str) and _number_text(got):
+            msg += "; write the number without quotes"
         return path, msg
     msg = " ".join(err["msg"].split()).removeprefix("Value error, ").removeprefix("Assertion failed, ")
     msg = msg.replace("Input should be", "must be")
@@ -865,6 +1109,14 @@ def _problem(err: Any, data: Any, in_file: bool) -> tuple[tuple[Any, ...], str]:
     elif not isinstance(got, dict):
         msg += f" (got {_show(got)})"
     return path, msg
+
+
+def _number_text(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
 
 
 def _explain(

@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
-from .decode import OpenedImage, open_image, to_rgb
+from .decode import OpenedImage, open_image, to_rgb, upright
 from .patches import PatchSet, grid_coords, normalize, patchify
 from .recipe import Recipe
 from .seeding import sample_rng
@@ -227,7 +227,7 @@ def process_record(rec: Record, recipe: Recipe, epoch: int, *, trace: dict[str, 
         ext, data = find_image(rec, recipe.source.image_keys)
         label = parse_label(rec, recipe.source.label_key)
         stage.enter("decode", "header")
-        opened = open_image(data, pixel_limit=recipe.decode.pixel_limit)
+        opened = open_image(data, pixel_limit=recipe.decode.pixel_limit, memory_limit=recipe.decode.memory_limit)
         meta = {"shard": rec.url, "index": rec.index, "member": ext, "format": opened.format,
                 "mode": opened.mode, "size": [opened.height, opened.width]}
         bg = recipe.decode.background
@@ -259,7 +259,8 @@ def image_to_patches(image: np.ndarray | Image.Image, recipe: Recipe, seed: int 
     """One image (HxWx3 uint8 array or PIL image) -> PatchSet under the recipe, without shards.
 
     `seed` plays the role of the recipe's seed for this call's random draws (None: the recipe's),
-    so the same (seed, epoch, key) gives the same tokens as the pipeline would.
+    so the same (seed, epoch, key) gives the same tokens as the pipeline would. A PIL image is first
+    turned upright by its EXIF orientation, as images read from shards are.
     """
     if isinstance(image, np.ndarray):
         if image.ndim == 2:
@@ -270,7 +271,7 @@ def image_to_patches(image: np.ndarray | Image.Image, recipe: Recipe, seed: int 
             )
         pil = Image.fromarray(image)
     elif isinstance(image, Image.Image):
-        pil = image
+        pil = upright(image)  # the EXIF orientation rule of the shard path
     else:
         raise TypeError(f"image must be a numpy array or a PIL image (got {type(image).__name__})")
     pil = to_rgb(pil, background=recipe.decode.background)
