@@ -130,9 +130,13 @@ def test_overwrite_clears_an_unfinished_ray_pack(recipe, inputs, tmp_path):
     (out / "notes.txt").write_text("mine")
     with pytest.raises(StoreError, match="not empty.*--overwrite.*--resume"):
         pack_to_dir(recipe, out, shards=inputs, progress=False)
-    pack_to_dir(recipe, out, shards=inputs, progress=False, overwrite=True)
+    with pytest.raises(StoreError, match=r"holds files pack did not write \(notes.txt\)"):  # yours: never deleted
+        pack_to_dir(recipe, out, shards=inputs, progress=False, overwrite=True)
+    assert (out / "notes.txt").read_text() == "mine" and (out / GROUPS / "w000.json").exists()
+    (out / "notes.txt").unlink()
+    man = pack_to_dir(recipe, out, shards=inputs, progress=False, overwrite=True)
     assert not (out / GROUPS).exists() and not (out / "packed-w003-000000.tar").exists()
-    assert (out / "notes.txt").exists() and (out / MANIFEST).exists()
+    assert sorted(p.name for p in out.iterdir()) == sorted([MANIFEST, *(s["name"] for s in man["shards"])])
 
 
 def test_resume_keeps_finished_groups_and_reruns_the_rest(recipe, local2, inputs, tmp_path, monkeypatch, capsys):

@@ -129,7 +129,7 @@ def test_round_trip_one_worker_matches_live_pipeline_in_order(spec, inputs, tmp_
     recipe = Recipe.from_dict(spec)
     man = pack_to_dir(recipe, tmp_path / "out", shards=inputs, progress=False, max_batches_per_shard=PER_SHARD)
     live = _live(recipe, inputs, 1)
-    back = list(read_packed(tmp_path / "out"))
+    back = list(read_packed(tmp_path / "out", shuffle=False))
     assert len(live) >= 3 and len(back) == len(live) == man["totals"]["batches"]
     assert all(_same(a, b) for a, b in zip(live, back))
     assert (back[0].masked is not None) == (spec is MASKED)
@@ -140,7 +140,7 @@ def test_round_trip_one_worker_matches_live_pipeline_in_order(spec, inputs, tmp_
 
 def test_round_trip_two_workers_equals_both_worker_pipelines(packed2, recipe, inputs):
     live = _live(recipe, inputs, 2)
-    back = list(read_packed(packed2))
+    back = list(read_packed(packed2, shuffle=False))
     assert len(back) == len(live) and all(_same(a, b) for a, b in zip(live, back))
     man = load_manifest(packed2)
     assert man["workers"] == 2
@@ -156,7 +156,7 @@ def test_manifest_records_inputs_recipe_versions_and_hashes(packed1, recipe, inp
     assert [Path(i["path"]).name for i in man["inputs"]] == ["demo-000000.tar", "demo-000001.tar"]
     assert all(i["bytes"] == Path(i["path"]).stat().st_size for i in man["inputs"])
     assert {"patchloom", "numpy", "pillow", "webdataset"} <= set(man["libraries"])
-    back = list(read_packed(packed1))
+    back = list(read_packed(packed1, shuffle=False))
     assert [h for s in man["shards"] for h in s["batch_sha256"]] == [batch_digests(b)[1] for b in back]
     t = man["totals"]
     assert t["tokens"] == sum(b.num_tokens for b in back)
@@ -270,7 +270,8 @@ def test_read_split_reads_every_batch_once(packed2, world_size, num_workers):
     seen: Counter = Counter()
     for rank in range(world_size):
         for worker in range(num_workers):
-            reader = PackedReader(packed2, rank=rank, world_size=world_size, worker=worker, num_workers=num_workers)
+            reader = PackedReader(packed2, rank=rank, world_size=world_size, worker=worker, num_workers=num_workers,
+                                  equalize=False)
             mine = [batch_digests(b)[1] for b in reader]
             assert len(mine) == len(reader)
             seen.update(mine)
@@ -352,8 +353,12 @@ def test_crash_mid_pack_leaves_only_whole_shards_and_no_manifest(recipe, inputs,
         pack_to_dir(recipe, out, shards=inputs, progress=False)
     (out / "packed-w000-000001.tar.tmp").write_bytes(b"junk")
     (out / "notes.txt").write_text("mine")
-    pack_to_dir(recipe, out, shards=inputs, progress=False, overwrite=True)
-    assert not list(out.glob("*.tmp")) and (out / "notes.txt").exists()
+    with pytest.raises(StoreError, match=r"holds files pack did not write \(notes.txt\)"):
+        pack_to_dir(recipe, out, shards=inputs, progress=False, overwrite=True)
+    assert (out / "notes.txt").read_text() == "mine" and (out / "packed-w000-000001.tar.tmp").exists()
+    (out / "notes.txt").unlink()
+    man = pack_to_dir(recipe, out, shards=inputs, progress=False, overwrite=True)
+    assert sorted(p.name for p in out.iterdir()) == sorted([MANIFEST, *(s["name"] for s in man["shards"])])
     assert verify_dir(out, progress=False).ok
 
 

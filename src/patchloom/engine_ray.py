@@ -26,9 +26,10 @@ Resume: when a group's shards are renamed, its task writes a done-record `.group
 key of the run's settings. The driver writes `.groups/run.json` (that key and the input hashes) as
 soon as the inputs are hashed. `resume=True` (`--resume`) first re-hashes the inputs (if they
 changed, or the settings differ, it refuses and asks for `--overwrite`), then keeps the groups whose
-record carries this run's key and whose shard files re-hash to the record, removes stale `.tmp`
-files and the shards of the other groups, runs those groups, and writes the manifest exactly as a
-fresh run would. `.groups/` is removed once the manifest is written, so a
+record carries this run's key, lists the shards pack writes for that group (checked like a
+manifest's, before any file it names is opened) and whose shard files re-hash to the record,
+removes stale `.tmp` files and the shards of the other groups, runs those groups, and writes the
+manifest exactly as a fresh run would. `.groups/` is removed once the manifest is written, so a
 finished folder is the local engine's folder; resuming a finished folder re-hashes its inputs and
 shards and returns its manifest.
 
@@ -52,7 +53,7 @@ from pathlib import Path
 from typing import Any
 
 from .recipe import Recipe, RecipeError
-from .sample import SampleError
+from .sample import SampleError, SkipRatioError
 from .sources import SourceError, reader_tasks
 from .store import (
     _TMP,
@@ -61,6 +62,8 @@ from .store import (
     MANIFEST,
     StoreError,
     _bar,
+    _check_shard_entries,
+    _Fields,
     _hash_input,
     _job_pack,
     _ours,
@@ -73,7 +76,7 @@ __all__ = ["FAIL_ONCE_ENV", "MAX_RETRIES", "finished_manifest", "forget_groups",
 FAIL_ONCE_ENV = "PATCHLOOM_TEST_FAIL_ONCE"
 MAX_RETRIES = 3  # per group, for dead workers and OSErrors; deterministic errors are never retried
 RUN_RECORD = "run.json"
-_EXPECTED = (StoreError, SampleError, SourceError, RecipeError)  # their message says it all
+_EXPECTED = (StoreError, SampleError, SourceError, RecipeError, SkipRatioError)  # their message says it all
 _POLL_S = 0.5
 
 
@@ -111,7 +114,7 @@ def _record_path(out: Path, group: int) -> Path:
 def _read_json(path: Path) -> dict[str, Any] | None:
     try:
         data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError):
+    except (OSError, UnicodeDecodeError, ValueError, RecursionError, MemoryError):  # damaged: not a record
         return None
     return data if isinstance(data, dict) else None
 
@@ -127,7 +130,23 @@ def _shards_intact(out: Path, entries: list[dict[str, Any]]) -> str | None:
     return None
 
 
-def _finished_groups(out: Path, run: str, hashed: list[dict[str, Any]], groups: int) -> dict[int, dict[str, Any]]:
+def _record_problem(out: Path, group: int, result: dict[str, Any], per_shard: int) -> str | None:
+    """What is wrong with a done-record's shard list (None: it is what pack writes for this group), checked
+    before any file it names is opened: a record is a file in the folder, as untrusted as a manifest."""
+    try:
+        batches = _check_shard_entries(_Fields(_record_path(out, group)), result.get("shards"),
+                                       workers=group + 1, per_shard=per_shard)
+    except StoreError as exc:
+        return str(exc)
+    if not isinstance(result.get("ledger_state"), dict):
+        return f"{_record_path(out, group)}: written by another patchloom version (no ledger_state)"
+    if any(batches[:group]) or batches[group] != result.get("batches"):
+        return f"{_record_path(out, group)}: its shards are not group {group}'s {result.get('batches')!r} batches"
+    return None
+
+
+def _finished_groups(out: Path, run: str, hashed: list[dict[str, Any]], groups: int,
+                     per_shard: int) -> dict[int, dict[str, Any]]:
     """Results of the groups an interrupted run finished that can be kept as they are."""
     recorded = _read_json(out / GROUPS / RUN_RECORD)
     if recorded is not None and recorded.get("run") != run:
@@ -148,7 +167,8 @@ def _finished_groups(out: Path, run: str, hashed: list[dict[str, Any]], groups: 
                          "stale: pass --overwrite to pack again from scratch")
     done: dict[int, dict[str, Any]] = {}
     for g, record in sorted(records.items()):
-        problem = _shards_intact(out, record["result"]["shards"])
+        result = record["result"]
+        problem = _record_problem(out, g, result, per_shard) or _shards_intact(out, result["shards"])
         if problem is None:
             done[g] = record["result"]
         else:
@@ -326,7 +346,7 @@ def run_pack_jobs(jobs: list[dict[str, Any]], *, address: str | None, progress: 
     resuming = resume and (out / GROUPS / RUN_RECORD).is_file()
     if resuming:
         hashed = hash_inputs()
-        done = _finished_groups(out, run, hashed, len(jobs))
+        done = _finished_groups(out, run, hashed, len(jobs), jobs[0]["per_shard"])
     _clear_unfinished(out, done)
     (out / GROUPS).mkdir(exist_ok=True)
     todo = [job for job in jobs if job["worker"] not in done]
