@@ -55,7 +55,7 @@ def shards(tmp_path: Path) -> list[str]:
 
 @pytest.fixture(scope="session")
 def demo_dir(tmp_path_factory) -> Path:
-    from patchloom.demodata import make_demo_shards
+    from patchloom.demo.data import make_demo_shards
 
     out = tmp_path_factory.mktemp("demo")
     make_demo_shards(out, shards=3, per_shard=24, seed=5, progress=False)

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from patchloom import Recipe, RecipeError
-from patchloom.augment import Augmenter, augmenter_for, validate_augment
+from patchloom.image.augment import Augmenter, augmenter_for, validate_augment
 
 MIXED = [
     {"name": "HorizontalFlip", "p": 0.5},
@@ -30,7 +30,7 @@ SURE = [  # every draw visible in the pixels: p=1 with continuous ranges
 ]
 SNIPPET = """
 import hashlib, sys, numpy as np
-from patchloom.augment import Augmenter
+from patchloom.image.augment import Augmenter
 import json
 aug = Augmenter(json.loads(sys.argv[1]))
 img = np.random.default_rng(7).integers(0, 256, (90, 110, 3), dtype=np.uint8)

@@ -3,7 +3,7 @@ from __future__ import annotations
 import numpy as np
 
 from patchloom import PatchSet, pack
-from patchloom.patches import grid_coords
+from patchloom.image.patches import grid_coords
 
 
 def make(n_tokens: list[int], seq_len: int, d: int = 3):

@@ -1,4 +1,4 @@
-"""Tests for patchloom.bench on one tiny demo shard: counts, medians, the ratio, the table, the script.
+"""Tests for patchloom.bench.pipeline on one tiny demo shard: counts, medians, the ratio, the table, the script.
 
 No timing is asserted: the numbers depend on the machine.
 """
@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from patchloom.bench import (
+from patchloom.bench.pipeline import (
     SquareBaseline,
     baseline_batch_images,
     baseline_side,
@@ -21,9 +21,9 @@ from patchloom.bench import (
     run_bench,
     square_patches,
 )
-from patchloom.cli import DEMO_RECIPE
-from patchloom.demodata import DEMO_CORRUPT_KEYS, MIN_SAMPLES, make_demo_shards
-from patchloom.recipe import Recipe
+from patchloom.cli.main import DEMO_RECIPE
+from patchloom.demo.data import DEMO_CORRUPT_KEYS, MIN_SAMPLES, make_demo_shards
+from patchloom.recipe.schema import Recipe
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -104,7 +104,7 @@ def test_ensure_demo_shards_only_for_demo_folder(tmp_path: Path) -> None:
 
 
 def test_bench_command(shard: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    from patchloom.cli import main
+    from patchloom.cli.main import main
 
     out = tmp_path / "bench.json"
     rc = main(["bench", "demo", "--shards", shard, "--repeats", "1", "--max-images", "4", "--json", str(out),
@@ -127,8 +127,8 @@ def test_tools_script_is_the_command(shard: str) -> None:
 
 
 def test_drop_mode_bench_reports_every_mode(shard: str, capsys: pytest.CaptureFixture[str]) -> None:
-    from patchloom.bench_drops import DROP_MODES
-    from patchloom.cli import main
+    from patchloom.bench.drops import DROP_MODES
+    from patchloom.cli.main import main
 
     assert main(["bench", "demo", "--shards", shard, "--drop-modes", "--repeats", "1",
                  "--max-images", "8", "--no-progress"]) == 0
@@ -136,7 +136,7 @@ def test_drop_mode_bench_reports_every_mode(shard: str, capsys: pytest.CaptureFi
     for name in DROP_MODES:
         assert name in out
     # Realised rates are real measurements: the fixed-rate random mode lands near 0.5.
-    from patchloom.bench_drops import bench_drop_modes
+    from patchloom.bench.drops import bench_drop_modes
 
     res = bench_drop_modes(Recipe.from_dict(DEMO_RECIPE), shards=shard, max_images=8, repeats=1)
     assert abs(res["modes"]["random 0.5"]["realised_mean"] - 0.5) < 0.02
@@ -144,8 +144,8 @@ def test_drop_mode_bench_reports_every_mode(shard: str, capsys: pytest.CaptureFi
 
 
 def test_resume_bench_measures_save_and_load(shard: str, capsys: pytest.CaptureFixture[str]) -> None:
-    from patchloom.bench_resume import bench_resume
-    from patchloom.cli import main
+    from patchloom.bench.resume import bench_resume
+    from patchloom.cli.main import main
 
     recipe = Recipe.from_dict(DEMO_RECIPE).replace(packing={"rows": 1, "buffer": 4})
     res = bench_resume(recipe, shards=shard, points=3)

@@ -15,11 +15,11 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from patchloom.bench import STAGES, run_bench, stage_profile
-from patchloom.bench_quality import decode_quality, format_quality, psnr
-from patchloom.benchdata import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern, photo_size
-from patchloom.recipe import Recipe
-from patchloom.sources import expand_shards
+from patchloom.bench.pipeline import STAGES, run_bench, stage_profile
+from patchloom.bench.quality import decode_quality, format_quality, psnr
+from patchloom.bench.photos import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern, photo_size
+from patchloom.recipe.schema import Recipe
+from patchloom.read.shards import expand_shards
 
 
 @pytest.fixture(scope="module")
@@ -104,7 +104,7 @@ def test_run_bench_reports_stages_quality_and_steady_padding(photos: str) -> Non
 
 def test_workers_bench_counts_every_image_at_each_worker_count(photos: str) -> None:
     pytest.importorskip("torch")
-    from patchloom.bench_scale import bench_workers, format_workers
+    from patchloom.bench.scale import bench_workers, format_workers
 
     res = bench_workers(_recipe(), shards=photos, workers=(0, 1), epochs=2)
     assert [r["workers"] for r in res["results"]] == [0, 1]
@@ -116,7 +116,7 @@ def test_workers_bench_counts_every_image_at_each_worker_count(photos: str) -> N
 
 
 def test_soak_streams_past_the_corpus_and_traces_memory(photos: str) -> None:
-    from patchloom.bench_scale import bench_soak, current_rss_mib, format_soak
+    from patchloom.bench.scale import bench_soak, current_rss_mib, format_soak
 
     if current_rss_mib() is None:
         pytest.skip("no /proc/self/statm on this platform")

@@ -5,13 +5,13 @@ import subprocess
 import sys
 from pathlib import Path
 
-from patchloom.cli import main
+from patchloom.cli.main import main
 
 ROOT = Path(__file__).parent.parent
 
 
 def test_help_lists_commands():
-    out = subprocess.run([sys.executable, "-m", "patchloom.cli", "--help"], capture_output=True, text=True)
+    out = subprocess.run([sys.executable, "-m", "patchloom.cli.main", "--help"], capture_output=True, text=True)
     assert out.returncode == 0
     for cmd in ("demo", "run", "recipe"):
         assert cmd in out.stdout
@@ -52,7 +52,7 @@ def test_run_with_missing_shards_fails_cleanly(tmp_path, capsys):
 
 def test_demo_command_makes_data_and_reports(tmp_path):
     data = tmp_path / "demo"
-    out = subprocess.run([sys.executable, "-m", "patchloom.cli", "demo", "--data", str(data), "--no-progress"],
+    out = subprocess.run([sys.executable, "-m", "patchloom.cli.main", "demo", "--data", str(data), "--no-progress"],
                          capture_output=True, text=True, timeout=300)
     assert out.returncode == 0, out.stderr
     assert "patchloom demo" in out.stdout and "images skipped  1" in out.stdout

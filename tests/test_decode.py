@@ -1,4 +1,4 @@
-"""Tests for patchloom.decode: formats, modes, alpha, 16-bit scaling, guards, errors, orientation, ICC."""
+"""Tests for patchloom.image.decode: formats, modes, alpha, 16-bit scaling, guards, errors, orientation, ICC."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from PIL import Image, ImageCms, ImageFile
 
-from patchloom.decode import DecodeError, OpenedImage, dct_scale, decode_rgb, open_image, to_rgb
+from patchloom.image.decode import DecodeError, OpenedImage, dct_scale, decode_rgb, open_image, to_rgb
 
 # ----------------------------------------------------------------------------- builders
 
@@ -619,7 +619,7 @@ def test_profile_of_the_wrong_colour_space_is_ignored():
 
 
 def test_without_littlecms_profiles_are_skipped_quietly(monkeypatch):
-    import patchloom.decode as decode
+    import patchloom.image.decode as decode
 
     monkeypatch.setattr(decode, "ImageCms", None)
     arr = np.full((2, 3, 3), 128, np.uint8)
@@ -690,7 +690,7 @@ def test_reduce_to_ignored_for_png():
 @pytest.fixture
 def small_bands(monkeypatch):
     """Row bands of 7 pixels, so a 13x11 image is converted in 13 bands (one row each)."""
-    import patchloom.decode as dec
+    import patchloom.image.decode as dec
 
     monkeypatch.setattr(dec, "_BAND_PIXELS", 7)
     return dec

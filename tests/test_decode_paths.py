@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 from PIL import Image, ImageCms
 
-import patchloom.decode as decode_mod
-from patchloom.decode import DecodeError, decode_path_counts, open_image, reset_decode_path_counts
+import patchloom.image.decode as decode_mod
+from patchloom.image.decode import DecodeError, decode_path_counts, open_image, reset_decode_path_counts
 
 pytest.importorskip("simplejpeg")
 

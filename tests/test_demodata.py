@@ -11,7 +11,7 @@ from pathlib import Path
 import pytest
 from PIL import Image, ImageFile
 
-from patchloom.demodata import (
+from patchloom.demo.data import (
     DEMO_CLASSES,
     DEMO_CORRUPT_KEYS,
     MIN_SAMPLES,

@@ -1,4 +1,4 @@
-"""Tests for patchloom.dropping: every mode on small, long and square grids, min_keep, the rate
+"""Tests for patchloom.image.dropping: every mode on small, long and square grids, min_keep, the rate
 settings, determinism, and applying a decision (drop and mask).
 
 Expected values are worked out here independently of the module: target counts in exact
@@ -15,7 +15,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from patchloom.dropping import (
+from patchloom.image.dropping import (
     DropDecision,
     apply_drop,
     decide_drop,
@@ -26,8 +26,8 @@ from patchloom.dropping import (
     drop_stripes,
     target_rate,
 )
-from patchloom.patches import PatchSet, grid_coords, patchify
-from patchloom.recipe import DropConfig
+from patchloom.image.patches import PatchSet, grid_coords, patchify
+from patchloom.recipe.schema import DropConfig
 
 GRIDS = [(1, 1), (1, 50), (3, 3), (14, 14), (7, 40)]
 RATES = [0.0, 0.3, 0.75, 1.0]

@@ -21,8 +21,10 @@ ray = pytest.importorskip("ray")
 
 import test_store as store_tests
 
-from patchloom import Recipe, engine_ray, store
-from patchloom.store import (
+from patchloom import Recipe
+from patchloom.store import engine_ray
+from patchloom.store import core as store
+from patchloom.store.core import (
     GROUPS,
     MANIFEST,
     StoreError,

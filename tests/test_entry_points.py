@@ -10,10 +10,10 @@ import pytest
 from PIL import Image
 
 from patchloom import Recipe
-from patchloom.batch import PackedBatch
+from patchloom.pack.batch import PackedBatch
 from patchloom.pipeline import image_to_patches
-from patchloom.sample import process_record
-from patchloom.sources import Record
+from patchloom.image.chain import process_record
+from patchloom.read.shards import Record
 
 RECIPE = Recipe.from_dict({
     "seed": 3,
@@ -79,7 +79,7 @@ def test_to_torch_always_has_masked_key():
 
 def test_missing_optional_extra_is_one_line_naming_the_extra(tmp_path, monkeypatch, capsys):
     """A recipe with an augment section on a machine without albumentations: one line, no traceback."""
-    from patchloom.cli import main
+    from patchloom.cli.main import main
 
     monkeypatch.setitem(__import__("sys").modules, "albumentations", None)  # import now fails
     recipe = tmp_path / "aug.yaml"

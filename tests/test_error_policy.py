@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from patchloom import Pipeline, Recipe, SampleError, SkipRatioError
-from patchloom.cli import main
+from patchloom.cli.main import main
 from patchloom.pipeline import EmptyEpochError
 
 from conftest import encode_png, random_image, write_shard

@@ -16,8 +16,8 @@ from hypothesis import strategies as st
 from PIL import Image
 
 from patchloom import PatchSet, Recipe, SampleError
-from patchloom.sample import process_record
-from patchloom.sources import Record
+from patchloom.image.chain import process_record
+from patchloom.read.shards import Record
 
 MAX_TOKENS = 64
 PATCH = 8

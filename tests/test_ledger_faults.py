@@ -19,7 +19,7 @@ import pytest
 from PIL import Image
 
 from patchloom import Pipeline, Recipe, SkipRatioError, SourceError
-from patchloom.cli import main
+from patchloom.cli.main import main
 from patchloom.pipeline import EXAMPLES_PER_REASON, MAX_REASONS, OTHER_REASONS, EmptyEpochError, Ledger, Skip
 from patchloom.summary import RunStats, format_table
 from patchloom.testing import check_resume

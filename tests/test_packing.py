@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 
 from patchloom import PatchSet, Packer, pack
-from patchloom.packing import assign_rows
-from patchloom.patches import grid_coords
+from patchloom.pack.packer import assign_rows
+from patchloom.image.patches import grid_coords
 
 
 def ps(n: int, key: str, d: int = 12, label: int | None = 1) -> PatchSet:
@@ -124,7 +124,7 @@ def test_small_buffer_waits_for_a_batch_worth_of_tokens():
 
 def test_packing_bench_reports_each_algorithm_and_buffer():
     from patchloom import Recipe
-    from patchloom.bench_packing import bench_packing
+    from patchloom.bench.packing import bench_packing
 
     res = bench_packing(Recipe.from_dict({"sizing": {"max_tokens": 64}, "packing": {"seq_len": 256, "rows": 2}}),
                         images=300, buffers=(4, 32))
@@ -162,7 +162,7 @@ def _stream_padding_and_waits(algorithm: str, seed: int = 0) -> tuple[float, int
 
 
 def test_largest_first_pads_less_than_first_fit_and_caps_the_wait():
-    from patchloom.packing import MAX_WAIT_BATCHES
+    from patchloom.pack.packer import MAX_WAIT_BATCHES
 
     pad_lf, wait_lf = _stream_padding_and_waits("largest_first")
     pad_ff, _ = _stream_padding_and_waits("first_fit")

@@ -6,10 +6,10 @@ import numpy as np
 import pytest
 
 from patchloom import PatchSet, Recipe, RecipeError, pack
-from patchloom.patches import grid_coords, patchify
-from patchloom.patchops import apply_patch_ops, gaussian_noise, jitter, standardize
-from patchloom.recipe import CropConfig, PatchOp
-from patchloom.sizing import draw_crop
+from patchloom.image.patches import grid_coords, patchify
+from patchloom.image.patchops import apply_patch_ops, gaussian_noise, jitter, standardize
+from patchloom.recipe.schema import CropConfig, PatchOp
+from patchloom.image.sizing import draw_crop
 
 
 def patches(n=64, d=48, seed=0):

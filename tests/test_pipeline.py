@@ -7,7 +7,7 @@ import pytest
 from PIL import Image
 
 from patchloom import Pipeline, Recipe, SampleError, image_to_patches
-from patchloom.sources import SourceError
+from patchloom.read.shards import SourceError
 
 from conftest import encode_png, make_shards, random_image, write_shard
 

@@ -12,7 +12,7 @@ import yaml
 from pydantic import BaseModel
 
 from patchloom import Recipe, RecipeError
-from patchloom.recipe import MAX_RECIPE_BYTES, PatchOp, SampledTokens, SizingConfig
+from patchloom.recipe.schema import MAX_RECIPE_BYTES, PatchOp, SampledTokens, SizingConfig
 
 RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.yaml"))
 
@@ -419,7 +419,7 @@ def test_extends_is_only_a_top_level_key(tmp_path):
 
 
 def test_recipe_show_prints_the_resolved_form_of_an_extending_recipe(tmp_path, capsys):
-    from patchloom.cli import main
+    from patchloom.cli.main import main
 
     write(tmp_path, "base.yaml", "seed: 3\nsizing: {max_tokens: 100}\npatch_ops: [{name: jitter}]\n")
     child = write(tmp_path, "child.yaml", "extends: base.yaml\nsizing: {max_aspect: 4}\noutput: {dtype: float16}\n")

@@ -19,14 +19,14 @@ import pytest
 from PIL import Image, ImageFile
 
 from patchloom import Recipe, RecipeError
-from patchloom.cli import main
-from patchloom.decode import MEMORY_LIMIT, DecodeError, decode_memory, decode_rgb, open_image
-from patchloom.packing import build_batch
-from patchloom.patches import normalize
-from patchloom.recipe import MAX_BATCH_BYTES, MAX_RECIPE_BYTES, MAX_SEED, batch_bytes
-from patchloom.sample import SampleError, process_record
+from patchloom.cli.main import main
+from patchloom.image.decode import MEMORY_LIMIT, DecodeError, decode_memory, decode_rgb, open_image
+from patchloom.pack.packer import build_batch
+from patchloom.image.patches import normalize
+from patchloom.recipe.schema import MAX_BATCH_BYTES, MAX_RECIPE_BYTES, MAX_SEED, batch_bytes
+from patchloom.image.chain import SampleError, process_record
 from patchloom.seeding import sample_rng
-from patchloom.sources import Record
+from patchloom.read.shards import Record
 
 
 def problem_lines(message: str) -> list[str]:

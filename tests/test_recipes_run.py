@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from patchloom import Pipeline, Recipe
-from patchloom.demodata import demo_shard_pattern
+from patchloom.demo.data import demo_shard_pattern
 
 RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.yaml"))
 

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 
 from patchloom import Pipeline, Recipe, image_to_patches, pack, unpatchify
-from patchloom.patches import PatchSet, grid_coords, normalize, patchify
+from patchloom.image.patches import PatchSet, grid_coords, normalize, patchify
 from patchloom.report import (
     add_inspect_command,
     build_report,
@@ -226,7 +226,7 @@ class _Page(HTMLParser):
 
 @pytest.fixture(scope="module")
 def small_report(tmp_path_factory):
-    from patchloom.demodata import make_demo_shards
+    from patchloom.demo.data import make_demo_shards
 
     root = tmp_path_factory.mktemp("report")
     make_demo_shards(root / "data", shards=1, per_shard=12, progress=False)

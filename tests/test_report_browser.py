@@ -71,7 +71,7 @@ def chromium() -> str:
 
 @pytest.fixture(scope="module")
 def report(tmp_path_factory):
-    from patchloom.demodata import make_demo_shards
+    from patchloom.demo.data import make_demo_shards
 
     root = tmp_path_factory.mktemp("browser")
     make_demo_shards(root / "data", shards=1, per_shard=12, progress=False)

@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from patchloom import Pipeline, Recipe
-from patchloom.demodata import demo_shard_pattern
+from patchloom.demo.data import demo_shard_pattern
 from patchloom.testing import check_resume
 
 from conftest import make_shards

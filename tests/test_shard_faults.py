@@ -21,8 +21,8 @@ import tracemalloc
 import numpy as np
 import pytest
 
-from patchloom import sources
-from patchloom.sources import (
+from patchloom.read import shards as sources
+from patchloom.read.shards import (
     ReaderCursor,
     ShardError,
     ShardTask,

@@ -1,4 +1,4 @@
-"""Tests for patchloom.sizing: budget windows, exact aspect search, native/fixed/sampled modes,
+"""Tests for patchloom.image.sizing: budget windows, exact aspect search, native/fixed/sampled modes,
 max_aspect crop and pad, and resize_to_plan.
 
 The expected values are computed here independently of the module: the best grid by brute force
@@ -17,7 +17,7 @@ from hypothesis import strategies as st
 from PIL import Image
 
 from patchloom import Recipe
-from patchloom.sizing import plan_size, resize_to_plan
+from patchloom.image.sizing import plan_size, resize_to_plan
 
 PROPERTY = settings(
     max_examples=200, deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow]

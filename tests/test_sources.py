@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from patchloom.seeding import stream_rng
-from patchloom.sources import (
+from patchloom.read.shards import (
     Record,
     ShuffleBuffer,
     SourceError,

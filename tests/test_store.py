@@ -16,8 +16,8 @@ import numpy as np
 import pytest
 
 from patchloom import Pipeline, Recipe
-from patchloom.demodata import MIN_SAMPLES, make_demo_shards
-from patchloom.store import (
+from patchloom.demo.data import MIN_SAMPLES, make_demo_shards
+from patchloom.store.core import (
     MANIFEST,
     PackedReader,
     StoreError,
@@ -330,7 +330,7 @@ def test_no_tmp_left_and_leftover_tmp_is_not_a_shard(packed1, tmp_path):
 
 
 def test_crash_mid_pack_leaves_only_whole_shards_and_no_manifest(recipe, inputs, tmp_path, monkeypatch):
-    from patchloom import store
+    from patchloom.store import core as store
 
     class Crashing(Pipeline):
         def __iter__(self):

@@ -26,9 +26,9 @@ import test_store as store_tests
 from conftest import encode_png, make_shards, random_image, write_shard
 
 from patchloom import Recipe, pack
-from patchloom import store
-from patchloom.patches import PatchSet
-from patchloom.store import (
+from patchloom.store import core as store
+from patchloom.image.patches import PatchSet
+from patchloom.store.core import (
     MANIFEST,
     PackedReader,
     StoreError,
@@ -386,7 +386,7 @@ def test_killed_pack_takes_its_workers_with_it_and_overwrite_cleans_up(tmp_path,
     recipe_file = tmp_path / "long.yaml"
     recipe_file.write_text(long.to_yaml())
     out = tmp_path / "out"
-    argv = [sys.executable, "-m", "patchloom.cli", "pack", str(recipe_file), "--out", str(out), "--shards", spec,
+    argv = [sys.executable, "-m", "patchloom.cli.main", "pack", str(recipe_file), "--out", str(out), "--shards", spec,
             "--workers", "2", "--max-batches-per-shard", "2", "--no-progress"]
     proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True)
     workers: dict[int, str] = {}

@@ -13,7 +13,7 @@ from torch.utils.data import DataLoader  # noqa: E402
 
 from patchloom import Recipe  # noqa: E402
 from patchloom.adapters.torch import PackedDataset  # noqa: E402
-from patchloom.demodata import DEMO_CORRUPT_KEYS, demo_shard_pattern  # noqa: E402
+from patchloom.demo.data import DEMO_CORRUPT_KEYS, demo_shard_pattern  # noqa: E402
 
 RECIPE = {"seed": 3, "source": {"shuffle_buffer": 16},
           "sizing": {"patch_size": 16, "max_tokens": 128, "min_tokens": 4, "max_aspect": 8.0},

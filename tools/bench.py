@@ -18,7 +18,7 @@ try:
 except ImportError:  # run from a checkout without installing: use the repository's src/
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
 
-from patchloom.cli import main
+from patchloom.cli.main import main
 
 if __name__ == "__main__":
     sys.exit(main(["bench", *sys.argv[1:]]))

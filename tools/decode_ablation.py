@@ -23,11 +23,11 @@ try:
 except ImportError:  # run from a checkout without installing: use the repository's src/
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
 
-import patchloom.decode as decode_mod
-from patchloom.bench import _time_pipeline, _warm_cache
-from patchloom.benchdata import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern
-from patchloom.recipe import Recipe
-from patchloom.sources import expand_shards
+import patchloom.image.decode as decode_mod
+from patchloom.bench.pipeline import _time_pipeline, _warm_cache
+from patchloom.bench.photos import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern
+from patchloom.recipe.schema import Recipe
+from patchloom.read.shards import expand_shards
 
 
 class _NoBar:

@@ -24,8 +24,8 @@ from PIL import Image
 
 from patchloom import PatchSet, Recipe, SampleError
 from patchloom.pipeline import _gist
-from patchloom.sample import process_record
-from patchloom.sources import Record
+from patchloom.image.chain import process_record
+from patchloom.read.shards import Record
 
 
 def seed_images(rng: np.random.Generator) -> list[tuple[str, bytes]]:

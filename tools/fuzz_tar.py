@@ -28,7 +28,7 @@ from pathlib import Path
 
 import numpy as np
 
-from patchloom.sources import Record, ShardTask, SourceError, read_shard
+from patchloom.read.shards import Record, ShardTask, SourceError, read_shard
 
 HANG_S = 20  # a case still running after this long is a finding (the reader must always end)
 EXTS = ("jpg", "png", "cls", "txt", "JPG", "Png", "tar.gz", "json")

@@ -1,5 +1,5 @@
 #!/usr/bin/env python
-"""Write the built-in Gullwick Point demo shards to a folder (a thin wrapper over patchloom.demodata)."""
+"""Write the built-in Gullwick Point demo shards to a folder (a thin wrapper over patchloom.demo.data)."""
 
 from __future__ import annotations
 
@@ -8,10 +8,10 @@ import sys
 from pathlib import Path
 
 try:
-    from patchloom.demodata import DEMO_CORRUPT_KEYS, demo_shard_pattern, make_demo_shards
+    from patchloom.demo.data import DEMO_CORRUPT_KEYS, demo_shard_pattern, make_demo_shards
 except ImportError:  # run from a checkout without installing: use the repository's src/
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
-    from patchloom.demodata import DEMO_CORRUPT_KEYS, demo_shard_pattern, make_demo_shards
+    from patchloom.demo.data import DEMO_CORRUPT_KEYS, demo_shard_pattern, make_demo_shards
 
 
 def main(argv: list[str] | None = None) -> int:

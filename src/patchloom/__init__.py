@@ -5,15 +5,15 @@ The public API is what this module names; everything else may move.
 
 from __future__ import annotations
 
-from .batch import PackedBatch
-from .decode import DecodeError
-from .packing import Packer, pack
-from .patches import PatchSet, patchify, unpatchify
+from .pack.batch import PackedBatch
+from .image.decode import DecodeError
+from .pack.packer import Packer, pack
+from .image.patches import PatchSet, patchify, unpatchify
 from .pipeline import EmptyEpochError, Ledger, Pipeline, SampleError, SkipRatioError, image_to_patches
-from .recipe import Recipe, RecipeError
-from .sizing import SizePlan, plan_size
-from .sources import ShardError, SourceError, expand_shards
-from .store import read_packed
+from .recipe.schema import Recipe, RecipeError
+from .image.sizing import SizePlan, plan_size
+from .read.shards import ShardError, SourceError, expand_shards
+from .store.core import read_packed
 
 __version__ = "0.1.0"
 

@@ -16,13 +16,13 @@ from dataclasses import dataclass, field
 from typing import Any
 
 
-from .batch import PackedBatch
-from .packing import Packer
-from .patches import PatchSet
-from .recipe import Recipe
-from .sample import SampleError, SkipRatioError, image_to_patches, process_record
+from .pack.batch import PackedBatch
+from .pack.packer import Packer
+from .image.patches import PatchSet
+from .recipe.schema import Recipe
+from .image.chain import SampleError, SkipRatioError, image_to_patches, process_record
 from .seeding import stream_rng
-from .sources import (
+from .read.shards import (
     Record,
     ReaderCursor,
     ShuffleBuffer,

@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .batch import PackedBatch
+from .pack.batch import PackedBatch
 
 
 @dataclass(slots=True)

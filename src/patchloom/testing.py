@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .batch import PackedBatch
+from .pack.batch import PackedBatch
 from .pipeline import Pipeline
 
 

@@ -14,8 +14,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from patchloom.augment import Augmenter
-from patchloom.patches import grid_coords, patchify
+from patchloom.image.augment import Augmenter
+from patchloom.image.patches import grid_coords, patchify
 
 CASES = [(1, 1, 4), (2, 3, 4), (3, 5, 2), (4, 4, 8)]  # (grid_h, grid_w, patch)
 

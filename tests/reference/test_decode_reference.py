@@ -1,4 +1,4 @@
-"""patchloom.decode checked against outside definitions (each test names its source)."""
+"""patchloom.image.decode checked against outside definitions (each test names its source)."""
 
 from __future__ import annotations
 
@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from patchloom.decode import decode_rgb, open_image
+from patchloom.image.decode import decode_rgb, open_image
 
 # Stored image: 48 wide x 32 high, mid grey, with two 8x8 marks (JPEG-safe flat blocks):
 # red at the stored top-left corner, green at the stored top-right corner.

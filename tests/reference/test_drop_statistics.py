@@ -20,8 +20,8 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from patchloom.dropping import decide_drop, drop_block
-from patchloom.recipe import DropConfig
+from patchloom.image.dropping import decide_drop, drop_block
+from patchloom.recipe.schema import DropConfig
 from patchloom.seeding import sample_rng
 
 IMAGES = 2_000

@@ -21,7 +21,7 @@ from einops import rearrange
 from PIL import Image
 
 from patchloom import Pipeline, Recipe, image_to_patches, patchify, unpatchify
-from patchloom.sizing import plan_size
+from patchloom.image.sizing import plan_size
 
 
 def einops_patchify(img: np.ndarray, p: int) -> np.ndarray:

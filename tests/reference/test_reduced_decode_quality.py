@@ -20,10 +20,10 @@ from PIL import Image
 skdata = pytest.importorskip("skimage.data")
 
 from patchloom import Recipe  # noqa: E402
-from patchloom.bench_quality import psnr  # noqa: E402
-from patchloom.decode import decode_path_counts, open_image, reset_decode_path_counts  # noqa: E402
-from patchloom.sample import _reduce_hint, plan_for  # noqa: E402
-from patchloom.sizing import resize_to_plan  # noqa: E402
+from patchloom.bench.quality import psnr  # noqa: E402
+from patchloom.image.decode import decode_path_counts, open_image, reset_decode_path_counts  # noqa: E402
+from patchloom.image.chain import _reduce_hint, plan_for  # noqa: E402
+from patchloom.image.sizing import resize_to_plan  # noqa: E402
 
 PHOTOS = ["astronaut", "coffee", "rocket", "immunohistochemistry"]
 

@@ -20,7 +20,7 @@ from PIL import Image
 skdata = pytest.importorskip("skimage.data")
 
 from patchloom import Pipeline, Recipe, image_to_patches  # noqa: E402
-from patchloom.sizing import plan_size  # noqa: E402
+from patchloom.image.sizing import plan_size  # noqa: E402
 
 PHOTOS = [
     "astronaut",

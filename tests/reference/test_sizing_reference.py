@@ -15,7 +15,7 @@ import pytest
 from PIL import Image
 
 from patchloom import Recipe, image_to_patches
-from patchloom.sizing import plan_size, resize_to_plan
+from patchloom.image.sizing import plan_size, resize_to_plan
 
 # Pillow's constants, looked up by Pillow's own names (independent of patchloom's table).
 FILTERS = {

@@ -26,8 +26,8 @@ except ImportError as exc:  # pragma: no cover - exercised only without the extr
     ) from exc
 
 from ..pipeline import Ledger, Pipeline, Skip, check_not_empty, check_skip_guard, check_state_version
-from ..recipe import Recipe
-from ..sources import describe_identity_change, shard_identity, split_shards
+from ..recipe.schema import Recipe
+from ..read.shards import describe_identity_change, shard_identity, split_shards
 
 #: Version of PackedLoader.state_dict() (2: shard identities kept once, worker states of version 2).
 LOADER_STATE_VERSION = 2

@@ -10,9 +10,9 @@ from typing import Any
 
 import numpy as np
 
-from ..patches import PatchSet
-from ..recipe import Recipe
-from ..sources import expand_shards
+from ..image.patches import PatchSet
+from ..recipe.schema import Recipe
+from ..read.shards import expand_shards
 from . import charts, palette, render
 from .collect import Collected, Traced, collect, determinism
 from .flags import ASPECT_ERROR_LIMIT, ROW_PADDING_LIMIT, UPSCALE_LIMIT, find_flags

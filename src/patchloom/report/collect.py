@@ -20,13 +20,13 @@ from typing import Any
 
 import numpy as np
 
-from ..batch import PackedBatch
-from ..patches import PatchSet
+from ..pack.batch import PackedBatch
+from ..image.patches import PatchSet
 from ..pipeline import Pipeline
-from ..recipe import Recipe
-from ..sample import SampleError, process_record
+from ..recipe.schema import Recipe
+from ..image.chain import SampleError, process_record
 from ..seeding import stream_rng
-from ..sources import Record
+from ..read.shards import Record
 from ..summary import RunStats
 
 #: The two Pipeline methods the watched pipeline listens at. If they move, the report moves with them.

@@ -13,8 +13,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from ..batch import PackedBatch
-from ..patches import unpatchify
+from ..pack.batch import PackedBatch
+from ..image.patches import unpatchify
 from . import palette
 
 RGB = tuple[int, int, int]

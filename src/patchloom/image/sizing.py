@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 from PIL import Image
 
-from .recipe import CropConfig, SizingConfig
+from ..recipe.schema import CropConfig, SizingConfig
 
 #: Budget mode uses at least this share of max_tokens (the grid may trade a little aspect accuracy
 #: for it). With it, any aspect ratio within 1:4..4:1 gets a grid using >= 85 % of the budget.

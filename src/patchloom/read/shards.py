@@ -22,7 +22,7 @@ from dataclasses import dataclass, field
 
 import braceexpand
 
-from .seeding import stream_rng
+from ..seeding import stream_rng
 
 SHELL_PREFIXES = ("pipe:",)
 

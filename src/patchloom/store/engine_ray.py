@@ -52,10 +52,10 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from .recipe import Recipe, RecipeError
-from .sample import SampleError, SkipRatioError
-from .sources import SourceError, reader_tasks
-from .store import (
+from ..recipe.schema import Recipe, RecipeError
+from ..image.chain import SampleError, SkipRatioError
+from ..read.shards import SourceError, reader_tasks
+from .core import (
     _TMP,
     FORMAT_VERSION,
     GROUPS,

@@ -13,13 +13,13 @@ from pathlib import Path
 
 from tqdm import tqdm
 
-from .extras import as_missing_extra
-from .pipeline import Pipeline, SampleError, SkipRatioError
-from .recipe import Recipe, RecipeError
-from .sources import SourceError
-from .report import add_inspect_command
-from .store import add_store_commands
-from .summary import RunStats, format_table
+from ..extras import as_missing_extra
+from ..pipeline import Pipeline, SampleError, SkipRatioError
+from ..recipe.schema import Recipe, RecipeError
+from ..read.shards import SourceError
+from ..report import add_inspect_command
+from ..store.core import add_store_commands
+from ..summary import RunStats, format_table
 
 #: The recipe `patchloom demo` runs: native aspect ratio under a 256-token budget, shuffled.
 DEMO_RECIPE = {
@@ -60,7 +60,7 @@ def _stream(recipe: Recipe, *, shards, epoch: int, rank: int, world_size: int, m
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
-    from .demodata import demo_shard_pattern, make_demo_shards
+    from ..demo.data import demo_shard_pattern, make_demo_shards
 
     data = Path(args.data)
     if not list(data.glob("demo-*.tar")):
@@ -86,12 +86,12 @@ def cmd_run(args: argparse.Namespace) -> int:
 
 
 def cmd_bench(args: argparse.Namespace) -> int:
-    from .bench import ensure_demo_shards, format_bench, run_bench
-    from .demodata import demo_shard_pattern
+    from ..bench.pipeline import ensure_demo_shards, format_bench, run_bench
+    from ..demo.data import demo_shard_pattern
 
     progress = not args.no_progress
     if args.recipe == "photos":
-        from .benchdata import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern
+        from ..bench.photos import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern
 
         args.data = args.data or "patchloom-bench"
         recipe = Recipe.from_dict(PHOTO_RECIPE, origin="built-in benchmark recipe")
@@ -109,27 +109,27 @@ def cmd_bench(args: argparse.Namespace) -> int:
     if ensure_demo_shards(spec, demo_dir=args.data, progress=progress):
         print(f"made demo shards in {args.data}", file=sys.stderr)
     if args.packing:
-        from .bench_packing import bench_packing, format_packing_bench
+        from ..bench.packing import bench_packing, format_packing_bench
 
         result = bench_packing(recipe)
         text = format_packing_bench(result)
     elif args.resume:
-        from .bench_resume import bench_resume, format_resume_bench
+        from ..bench.resume import bench_resume, format_resume_bench
 
         result = bench_resume(recipe, shards=shards)
         text = format_resume_bench(result)
     elif args.workers is not None:
-        from .bench_scale import bench_workers, format_workers
+        from ..bench.scale import bench_workers, format_workers
 
         result = bench_workers(recipe, shards=shards, workers=tuple(range(args.workers + 1)), progress=progress)
         text = format_workers(result)
     elif args.soak is not None:
-        from .bench_scale import bench_soak, format_soak
+        from ..bench.scale import bench_soak, format_soak
 
         result = bench_soak(recipe, shards=shards, images=args.soak, progress=progress)
         text = format_soak(result)
     elif args.drop_modes:
-        from .bench_drops import bench_drop_modes, format_drop_bench
+        from ..bench.drops import bench_drop_modes, format_drop_bench
 
         result = bench_drop_modes(recipe, shards=shards, max_images=args.max_images or 200, repeats=args.repeats)
         text = format_drop_bench(result)

@@ -14,10 +14,10 @@ from typing import Any
 
 import numpy as np
 
-from .dropping import apply_drop, decide_drop
-from .pipeline import Pipeline
-from .recipe import DropConfig, Recipe
-from .seeding import sample_rng
+from ..image.dropping import apply_drop, decide_drop
+from ..pipeline import Pipeline
+from ..recipe.schema import DropConfig, Recipe
+from ..seeding import sample_rng
 
 #: The modes compared, each at a typical setting.
 DROP_MODES: dict[str, dict[str, Any]] = {

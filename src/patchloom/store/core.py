@@ -63,8 +63,8 @@ from typing import Any
 import braceexpand
 import numpy as np
 
-from .batch import PackedBatch
-from .pipeline import (
+from ..pack.batch import PackedBatch
+from ..pipeline import (
     EmptyEpochError,
     Ledger,
     Pipeline,
@@ -73,9 +73,9 @@ from .pipeline import (
     check_not_empty,
     check_skip_guard,
 )
-from .recipe import MAX_SEED, Recipe, RecipeError
-from .seeding import stream_rng
-from .sources import SHELL_PREFIXES, SourceError, expand_shards, open_shard
+from ..recipe.schema import MAX_SEED, Recipe, RecipeError
+from ..seeding import stream_rng
+from ..read.shards import SHELL_PREFIXES, SourceError, expand_shards, open_shard
 
 __all__ = [
     "FORMAT",
@@ -1564,8 +1564,8 @@ def cmd_pack(args: argparse.Namespace) -> int:
     shards = args.shards
     try:
         if args.recipe == "demo" and not Path(args.recipe).exists():
-            from .cli import DEMO_RECIPE
-            from .demodata import demo_shard_pattern
+            from ..cli.main import DEMO_RECIPE
+            from ..demo.data import demo_shard_pattern
 
             recipe = Recipe.from_dict(DEMO_RECIPE, origin="built-in demo recipe")
             shards = shards or demo_shard_pattern("patchloom-demo")

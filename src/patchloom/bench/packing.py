@@ -12,10 +12,10 @@ from typing import Any
 
 import numpy as np
 
-from .packing import ALGORITHMS, Packer
-from .patches import PatchSet
-from .recipe import Recipe
-from .sizing import plan_size
+from ..pack.packer import ALGORITHMS, Packer
+from ..image.patches import PatchSet
+from ..recipe.schema import Recipe
+from ..image.sizing import plan_size
 
 
 def token_counts(recipe: Recipe, n: int, *, seed: int = 0, aspect: tuple[float, float] = (1 / 3, 3.0)) -> np.ndarray:

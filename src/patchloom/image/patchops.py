@@ -11,7 +11,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from .recipe import PatchOp
+from ..recipe.schema import PatchOp
 
 
 def jitter(x: np.ndarray, rng: np.random.Generator, *, brightness: float, contrast: float) -> np.ndarray:

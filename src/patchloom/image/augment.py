@@ -63,7 +63,7 @@ from typing import Any, Literal
 
 import numpy as np
 
-from .extras import require
+from ..extras import require
 
 Stage = Literal["before", "after"]
 STAGES: tuple[Stage, ...] = ("before", "after")

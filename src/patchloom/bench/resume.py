@@ -9,8 +9,8 @@ import statistics
 import time
 from typing import Any
 
-from .pipeline import Pipeline
-from .recipe import Recipe
+from ..pipeline import Pipeline
+from ..recipe.schema import Recipe
 
 
 def bench_resume(recipe: Recipe, *, shards: str | list[str] | None = None, points: int = 5) -> dict[str, Any]:

@@ -20,8 +20,8 @@ from typing import Any
 
 from tqdm import tqdm
 
-from .recipe import Recipe
-from .sources import expand_shards
+from ..recipe.schema import Recipe
+from ..read.shards import expand_shards
 
 __all__ = ["bench_soak", "bench_workers", "current_rss_mib", "format_soak", "format_workers"]
 
@@ -43,7 +43,7 @@ def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, work
     """Images/s through a torch DataLoader for each worker count (warm epochs and the cold first one)."""
     from torch.utils.data import DataLoader
 
-    from .adapters.torch import PackedDataset
+    from ..adapters.torch import PackedDataset
 
     if epochs < 2:
         raise ValueError(f"epochs must be >= 2 (one cold, at least one warm; got {epochs})")
@@ -97,7 +97,7 @@ def bench_soak(recipe: Recipe, *, shards: str | list[str] | None = None, images:
     sized, patched and packed afresh (keys repeat, which only matters to the random draws). Growth is the last sample minus the one taken after the first tenth of the stream
     (once shuffle and packing buffers are full).
     """
-    from .pipeline import Pipeline
+    from ..pipeline import Pipeline
 
     urls = expand_shards(shards if shards is not None else recipe.source.shards, allow_shell=False)
     per_pass = _count_samples(urls)
@@ -134,7 +134,7 @@ def bench_soak(recipe: Recipe, *, shards: str | list[str] | None = None, images:
 
 
 def _count_samples(urls: list[str]) -> int:
-    from .sources import ShardTask, read_tasks
+    from ..read.shards import ShardTask, read_tasks
 
     return sum(1 for _ in read_tasks([ShardTask(u) for u in urls], allow_shell=False))
 

@@ -59,7 +59,7 @@ MAX_SEED = 2**63 - 1
 #: recipe that would allocate more fails at `recipe check` instead of in the middle of a run.
 MAX_BATCH_BYTES = 4 << 30
 
-#: Default of decode.memory_limit; the same number as patchloom.decode.MEMORY_LIMIT (not imported,
+#: Default of decode.memory_limit; the same number as patchloom.image.decode.MEMORY_LIMIT (not imported,
 #: so reading a recipe does not load the image decoders).
 DEFAULT_DECODE_MEMORY = 1 << 30
 
@@ -115,7 +115,7 @@ class DecodeConfig(_Section):
     pixel_limit: StrictInt = Field(default=64_000_000, ge=1)
     # Bytes one decode may hold (decoded pixels plus the RGB conversion, alpha compositing and
     # rotation buffers), judged from the header: an 8000x8000 16-bit RGBA PNG passes pixel_limit
-    # yet needs about 1.4 GB. See patchloom.decode.decode_memory.
+    # yet needs about 1.4 GB. See patchloom.image.decode.decode_memory.
     memory_limit: StrictInt = Field(default=DEFAULT_DECODE_MEMORY, ge=1)
     reduced_jpeg: StrictBool = True  # let the JPEG decoder skip detail the size plan will discard
     background: tuple[StrictInt, StrictInt, StrictInt] = (255, 255, 255)
@@ -362,7 +362,7 @@ class Recipe(_Section):
     @classmethod
     def _augment_builds(cls, v: list[dict[str, Any]]) -> list[dict[str, Any]]:
         if v:
-            from .augment import validate_augment  # imports albumentations only when used
+            from ..image.augment import validate_augment  # imports albumentations only when used
 
             validate_augment(v)
         return v

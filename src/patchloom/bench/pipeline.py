@@ -1,6 +1,6 @@
 """Benchmark: the pipeline beside a plain square-resize baseline, in one process, over the same shards.
 
-The baseline is what most image loaders do today: read the same tar records (patchloom.sources, in
+The baseline is what most image loaders do today: read the same tar records (patchloom.read.shards, in
 shard order, no shuffle), decode every image fully with Pillow and `convert("RGB")`, squash it to a
 square of `patch_size * isqrt(max_tokens)` pixels with the recipe's resample filter, patchify it with
 numpy and stack fixed-count batches. The candidate is a full iteration of `Pipeline(recipe, shards)`.
@@ -29,13 +29,13 @@ import numpy as np
 from PIL import Image
 from tqdm import tqdm
 
-from .packing import Packer
-from .patches import normalize, patchify
-from .pipeline import Pipeline
-from .sample import SampleError, parse_label, process_record
-from .recipe import Recipe
-from .sizing import RESAMPLE
-from .sources import ShardTask, expand_shards, read_tasks, shard_order
+from ..pack.packer import Packer
+from ..image.patches import normalize, patchify
+from ..pipeline import Pipeline
+from ..image.chain import SampleError, parse_label, process_record
+from ..recipe.schema import Recipe
+from ..image.sizing import RESAMPLE
+from ..read.shards import ShardTask, expand_shards, read_tasks, shard_order
 
 try:  # not on Windows; the memory column is then left empty
     import resource
@@ -354,7 +354,7 @@ def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_imag
             runs[side].append(res)
     med = {side: _summary(runs[side]) for side in SIDES}
     stages = stage_profile(recipe, urls, max_images)
-    from .bench_quality import decode_quality
+    from .quality import decode_quality
 
     quality = decode_quality(recipe, shards=urls, max_images=max_images or 300) if quality_check else None
     return {
@@ -417,7 +417,7 @@ def format_bench(result: dict) -> str:
         pack = stages["us_per_image"].get("pack", 0.0)
         lines.append(f"  packing share of the chain: {100 * pack / total:.2f} %")
     if result.get("quality"):
-        from .bench_quality import format_quality
+        from .quality import format_quality
 
         lines += ["  " + line for line in format_quality(result["quality"]).splitlines()]
     ratio = result["ratio"]
@@ -452,7 +452,7 @@ def ensure_demo_shards(spec: str | list[str] | None, *, demo_dir: str | Path = "
                 wanted.append(int(match.group(1)))
     if not wanted or all((folder / f"demo-{i:06d}.tar").is_file() for i in wanted):
         return False
-    from .demodata import make_demo_shards
+    from ..demo.data import make_demo_shards
 
     make_demo_shards(folder, shards=max(wanted) + 1, progress=progress)
     return True

@@ -19,10 +19,10 @@ from PIL import Image
 
 from .decode import OpenedImage, open_image, to_rgb, upright
 from .patches import PatchSet, grid_coords, normalize, patchify
-from .recipe import Recipe
-from .seeding import sample_rng
+from ..recipe.schema import Recipe
+from ..seeding import sample_rng
 from .sizing import SizePlan, draw_crop, plan_size, resize_to_plan
-from .sources import Record
+from ..read.shards import Record
 
 
 class SampleError(RuntimeError):

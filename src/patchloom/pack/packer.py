@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 
 from .batch import PackedBatch
-from .patches import PatchSet
+from ..image.patches import PatchSet
 
 ALGORITHMS = ("largest_first", "first_fit", "best_fit", "in_order")
 

@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .patches import PatchSet
-from .recipe import DropConfig
+from ..recipe.schema import DropConfig
 
 Rect = tuple[int, int, int, int]  # (top, left, height, width) in patch-grid units
 

@@ -15,11 +15,11 @@ from typing import Any
 
 import numpy as np
 
-from .decode import decode_path_counts, open_image, reset_decode_path_counts
-from .recipe import Recipe
-from .sample import _reduce_hint, find_image, plan_for
-from .sizing import SizePlan, resize_to_plan
-from .sources import ShardTask, expand_shards, read_tasks
+from ..image.decode import decode_path_counts, open_image, reset_decode_path_counts
+from ..recipe.schema import Recipe
+from ..image.chain import _reduce_hint, find_image, plan_for
+from ..image.sizing import SizePlan, resize_to_plan
+from ..read.shards import ShardTask, expand_shards, read_tasks
 
 __all__ = ["decode_quality", "format_quality", "psnr"]
 

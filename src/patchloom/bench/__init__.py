@@ -1,0 +1,1 @@
+"""Benchmarks against a plain square-resize baseline, and their corpora."""

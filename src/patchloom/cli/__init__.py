@@ -1,0 +1,5 @@
+"""The `patchloom` command."""
+
+from .main import main
+
+__all__ = ["main"]

@@ -1,0 +1,1 @@
+"""The made-up demo archive and the demo recipe."""

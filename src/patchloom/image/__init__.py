@@ -1,0 +1,1 @@
+"""One image's chain: decode, sizing, augmentation, patches, token dropping and patch ops."""
