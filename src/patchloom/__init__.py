@@ -5,6 +5,7 @@ The public API is what this module names; everything else may move.
 
 from __future__ import annotations
 
+from .errors import PatchloomError
 from .pack.batch import PackedBatch
 from .image.decode import DecodeError
 from .pack.packer import Packer, pack
@@ -22,6 +23,7 @@ __all__ = [
     "EmptyEpochError",
     "Ledger",
     "PackedBatch",
+    "PatchloomError",
     "Packer",
     "PatchSet",
     "Pipeline",

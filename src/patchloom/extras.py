@@ -5,6 +5,8 @@ from __future__ import annotations
 import importlib
 from types import ModuleType
 
+from .errors import PatchloomError
+
 #: Importable module -> the patchloom extra that installs it.
 EXTRAS: dict[str, str] = {
     "albumentations": "augment",
@@ -15,7 +17,7 @@ EXTRAS: dict[str, str] = {
 }
 
 
-class MissingExtraError(ImportError):
+class MissingExtraError(PatchloomError, ImportError):
     """An optional package is not installed; the message names the extra that brings it."""
 
 

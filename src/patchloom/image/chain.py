@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 from PIL import Image
 
+from ..errors import PatchloomError
 from .decode import OpenedImage, open_image, to_rgb, upright
 from .patches import PatchSet, grid_coords, normalize, patchify
 from ..recipe.schema import Recipe
@@ -25,7 +26,7 @@ from .sizing import SizePlan, draw_crop, plan_size, resize_to_plan
 from ..read.shards import Record
 
 
-class SampleError(RuntimeError):
+class SampleError(PatchloomError, RuntimeError):
     """One sample failed; the message names the shard, the key, the stage and the cause."""
 
     def __init__(self, shard: str = "", key: str = "", stage: str = "", cause: str = "", *,
@@ -36,7 +37,7 @@ class SampleError(RuntimeError):
         self.shard, self.key, self.stage, self.cause = shard, key, stage, cause
 
 
-class SkipRatioError(RuntimeError):
+class SkipRatioError(PatchloomError, RuntimeError):
     """Too many samples were skipped: a broken shard list should not train quietly on part of the data."""
 
 

@@ -30,6 +30,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from PIL import Image
 
+from ..errors import PatchloomError
+
 try:  # littlecms support is optional in Pillow builds; without it ICC profiles are ignored.
     from PIL import ImageCms
 except ImportError:  # pragma: no cover - depends on the Pillow build
@@ -130,7 +132,7 @@ _ALPHA_MODES = ("RGBA", "LA", "La", "RGBa", "PA")
 _ICC_SPACE = {"L": "GRAY", "RGB": "RGB", "CMYK": "CMYK", "LAB": "LAB"}
 
 
-class DecodeError(ValueError):
+class DecodeError(PatchloomError, ValueError):
     """Bytes that cannot become an image (message says why and what to change)."""
 
 

@@ -22,12 +22,13 @@ from dataclasses import dataclass, field
 
 import braceexpand
 
+from ..errors import PatchloomError
 from ..seeding import stream_rng
 
 SHELL_PREFIXES = ("pipe:",)
 
 
-class SourceError(ValueError):
+class SourceError(PatchloomError, ValueError):
     """A shard spec or shard that cannot be read; the message names it and what to change."""
 
 

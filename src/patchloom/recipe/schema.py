@@ -46,6 +46,8 @@ from pydantic import (
     model_validator,
 )
 
+from ..errors import PatchloomError
+
 RECIPE_VERSION = 1
 RESAMPLE_FILTERS = ("nearest", "box", "bilinear", "hamming", "bicubic", "lanczos")
 DEFAULT_IMAGE_KEYS = ["jpg", "jpeg", "png", "webp", "gif", "bmp", "tif", "tiff"]
@@ -73,7 +75,7 @@ DTYPE_BYTES = {"uint8": 1, "float16": 2, "float32": 4}
 RECIPE_SUFFIXES = (".yaml", ".yml")
 
 
-class RecipeError(ValueError):
+class RecipeError(PatchloomError, ValueError):
     """A recipe that cannot be used; the message names the file and the key path."""
 
 

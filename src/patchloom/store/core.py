@@ -63,6 +63,7 @@ from typing import Any
 import braceexpand
 import numpy as np
 
+from ..errors import PatchloomError
 from ..pack.batch import PackedBatch
 from ..pipeline import (
     EmptyEpochError,
@@ -120,7 +121,7 @@ _PR_SET_PDEATHSIG = 1  # linux/prctl.h
 _ORPHANED = 70  # exit status of a worker process whose parent died
 
 
-class StoreError(ValueError):
+class StoreError(PatchloomError, ValueError):
     """A packed folder that cannot be written or read; the message names the file and the cause."""
 
 
