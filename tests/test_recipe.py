@@ -12,7 +12,7 @@ import yaml
 from pydantic import BaseModel
 
 from patchloom import Recipe, RecipeError
-from patchloom.recipe.schema import MAX_RECIPE_BYTES, PatchOp, SampledTokens, SizingConfig
+from patchloom.recipe import MAX_RECIPE_BYTES, PatchOp, SampledTokens, SizingConfig
 
 RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.yaml"))
 
@@ -167,7 +167,7 @@ def test_extends_is_suggested_only_in_files(tmp_path):
         ({"decode": {"background": [0, 0, 0, 0]}},
          "decode.background: must be a list of 3 integers (got [0, 0, 0, 0])"),
         ({"decode": {"background": 7}}, "decode.background: must be a list of 3 integers (got 7)"),
-        ({"crop": {"scale": [0.5]}}, "crop.scale: must be a list of 2 numbers (got [0.5])"),
+        ({"crop": {"area": [0.5]}}, "crop.area: must be a list of 2 numbers (got [0.5])"),
         ({"patch_ops": [{"p": 0.5}]},
          "patch_ops.0.name: required key is missing: one of 'standardize', 'jitter', 'shuffle', 'noise'"),
         ({"packing": {"algorithm": "bestfit"}},
@@ -448,7 +448,7 @@ def fp_of_text(tmp_path, text, name="f.yaml"):
         ("patch_ops: [{name: noise, sigma: 2}]\n", "patch_ops:\n  - name: noise\n    sigma: 2\n"),
         ("sizing: {max_aspect: 4}\n", "sizing: {max_aspect: 4.0}\n"),
         ("drop: {mode: random, rate: 1}\n", "drop: {mode: random, rate: 1.0}\n"),
-        ("crop: {mode: random, scale: [1, 1]}\n", "crop: {mode: random, scale: [1.0, 1.0]}\n"),
+        ("crop: {mode: random, area: [1, 1]}\n", "crop: {mode: random, area: [1.0, 1.0]}\n"),
         ("seed: 7\n", "seed: +7\n"),  # (7.0 is refused: integers are strict, see test_recipe_guards)
         ("patch_ops: [{name: noise, sigma: 2}]\n", "patch_ops: [{name: noise, sigma: 2e0}]\n"),
         ("patch_ops: [{name: standardize, eps: 0.000001}]\noutput: {dtype: float32}\n",

@@ -21,12 +21,12 @@ from PIL import Image, ImageFile
 from patchloom import Recipe, RecipeError
 from patchloom.cli.main import main
 from patchloom.image.decode import MEMORY_LIMIT, DecodeError, decode_memory, decode_rgb, open_image
-from patchloom.pack.packer import build_batch
+from patchloom.packing.packer import build_batch
 from patchloom.image.patches import normalize
-from patchloom.recipe.schema import MAX_BATCH_BYTES, MAX_RECIPE_BYTES, MAX_SEED, batch_bytes
+from patchloom.recipe import MAX_BATCH_BYTES, MAX_RECIPE_BYTES, MAX_SEED, batch_bytes
 from patchloom.image.chain import SampleError, process_record
 from patchloom.seeding import sample_rng
-from patchloom.read.shards import Record
+from patchloom.read import Record
 
 
 def problem_lines(message: str) -> list[str]:
@@ -214,7 +214,7 @@ def test_uint8_output_ignores_mean_and_std():
         ({"packing": {"rows": "8"}}, "packing.rows: must be an integer (got '8'); write the number without quotes"),
         ({"decode": {"background": [True, 0, 0]}},
          "decode.background.0: must be an integer, not true/false (got true)"),
-        ({"crop": {"scale": [False, 1]}}, "crop.scale.0: must be a number, not true/false (got false)"),
+        ({"crop": {"area": [False, 1]}}, "crop.area.0: must be a number, not true/false (got false)"),
         ({"patch_ops": [{"name": "noise", "sigma": True}]},
          "patch_ops.0.sigma: must be a number, not true/false (got true)"),
         ({"source": {"max_skip_ratio": True}},
@@ -228,9 +228,9 @@ def test_numbers_and_switches_are_strict(data, line):
 
 
 def test_integers_are_still_numbers():
-    r = Recipe.from_dict({"source": {"max_skip_ratio": 1}, "crop": {"mode": "random", "scale": [1, 1]},
+    r = Recipe.from_dict({"source": {"max_skip_ratio": 1}, "crop": {"mode": "random", "area": [1, 1]},
                           "output": {"dtype": "float32", "std": [1, 1, 1]}})
-    assert r.source.max_skip_ratio == 1.0 and r.crop.scale == (1.0, 1.0) and r.output.std == (1.0, 1.0, 1.0)
+    assert r.source.max_skip_ratio == 1.0 and r.crop.area == (1.0, 1.0) and r.output.std == (1.0, 1.0, 1.0)
 
 
 def test_yaml_numbers_read_as_numbers(tmp_path):
@@ -278,9 +278,9 @@ def test_batch_bytes_matches_the_arrays_a_batch_holds(dtype):
     assert tokens + slots == sum(a.nbytes for a in batch.to_arrays().values())
 
 
-def test_mask_apply_counts_the_mask():
+def test_mask_output_counts_the_mask():
     plain = Recipe.from_dict({"drop": {"mode": "random", "rate": 0.5}})
-    masked = Recipe.from_dict({"drop": {"mode": "random", "rate": 0.5, "apply": "mask"}})
+    masked = Recipe.from_dict({"drop": {"mode": "random", "rate": 0.5, "output": "mask"}})
     assert batch_bytes(masked)[0] - batch_bytes(plain)[0] == 8 * 1024
 
 

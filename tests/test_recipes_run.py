@@ -16,14 +16,14 @@ RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.yaml"))
 AUGMENTED = {
     "seed": 5,
     "source": {"shuffle_buffer": 8},
-    "crop": {"mode": "random", "scale": [0.3, 1.0]},
+    "crop": {"mode": "random", "area": [0.3, 1.0]},
     "sizing": {"patch_size": 16, "max_tokens": 96, "min_tokens": 4, "max_aspect": 8.0},
     "augment": [{"name": "HorizontalFlip", "p": 0.5},
                 {"name": "ColorJitter", "p": 0.8, "brightness": 0.3},
                 {"name": "RandomCrop", "height": 12, "width": 12, "p": 0.2, "pad_if_needed": True}],
     "drop": {"mode": "random", "beta": [2.0, 3.0], "min_keep": 2},
     "patch_ops": [{"name": "jitter", "p": 0.5}, {"name": "noise", "sigma": 2.0}],
-    "packing": {"seq_len": 256, "rows": 2, "max_images_per_row": 12, "buffer": 10},
+    "packing": {"seq_len": 256, "rows": 2, "max_images_per_row": 12, "lookahead": 10},
 }
 
 
@@ -56,7 +56,7 @@ def test_recipe_streams_demo_shards(path, demo_dir):
     for batch in pipe:
         shapes.add(batch.patches.shape)
         assert batch.patches.dtype == np.dtype(recipe.output.dtype)
-        if recipe.drop.apply == "mask" and recipe.drop.mode != "none":
+        if recipe.drop.output == "mask" and recipe.drop.mode != "none":
             assert batch.masked is not None and not batch.masked[batch.segment_ids == 0].any()
     p = recipe.packing
     assert shapes == {(p.rows, p.seq_len, recipe.sizing.patch_size ** 2 * 3)}
@@ -92,7 +92,7 @@ def test_epochs_draw_differently(demo_dir):
 
 def test_mask_mode_flags_tokens_at_the_asked_rate(demo_dir):
     recipe = Recipe.from_dict({**AUGMENTED, "augment": [], "patch_ops": [],
-                               "drop": {"mode": "block", "apply": "mask", "rate": 0.5, "min_keep": 1}})
+                               "drop": {"mode": "block", "output": "mask", "rate": 0.5, "min_keep": 1}})
     samples = per_sample(Pipeline(recipe, demo_shard_pattern(demo_dir)))
     fractions = [m.mean() for _, coords, m in samples.values() if len(m) >= 64]
     assert fractions and abs(np.mean(fractions) - 0.5) < 0.1

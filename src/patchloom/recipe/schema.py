@@ -1,36 +1,20 @@
 """Recipe: the validated, fingerprinted description of one preprocessing run.
 
-A recipe is data. It is loaded with a restricted YAML safe loader (no Python or custom tags, no
-duplicate keys, size and alias-expansion caps), validated by pydantic (unknown keys are errors,
-with a did-you-mean), and never names code to run.
-
-A recipe file may start with ``extends: base.yaml`` (a path relative to the extending file; the
-base may extend another file in turn, a cycle is an error). The base is loaded first and the
-extending file's keys override it:
-
-- mappings merge key by key, at every depth;
-- any other value, lists included, replaces the base's value whole (lists are not appended to);
-- ``key: null`` in an extending file removes the key, so it takes its schema default. (Where
-  null is itself a setting, e.g. ``source.label_key: null`` for unlabelled data, write it in a
-  file that extends nothing: there null keeps its plain meaning.)
-
-Resolution happens before validation, so an extending recipe validates, prints (``to_yaml``) and
-fingerprints exactly like the same settings written out in full.
+The sections and their cross-checks are pydantic models (unknown keys are errors). Reading files
+(the hardened YAML loader, `extends`) is in `loader`; turning validation errors into one line
+each, with a did-you-mean, is in `messages`. The allowed names of modes, filters, patch ops and
+packing algorithms are read from the tables that implement them (DROP_MODES, SIZING_MODES,
+RESAMPLE_FILTERS, PATCH_OPS, ALGORITHMS), so adding an entry there is all a new name needs.
 """
 
 from __future__ import annotations
 
-import difflib
+import copy
 import hashlib
 import json
 import math
-import os
-import re
-import stat
-import types
-import typing
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import Any, Literal
 
 import yaml
 from pydantic import (
@@ -46,16 +30,15 @@ from pydantic import (
     model_validator,
 )
 
-from ..errors import PatchloomError
+from ..image.dropping import DROP_MODES
+from ..image.patchops import PATCH_OPS
+from ..image.sizing import RESAMPLE_FILTERS, SIZING_MODES
+from ..packing.assign import ALGORITHMS
+from .loader import MAX_SEED, Provenance, resolve_file, unusable_value
+from .messages import RENAMES, ProblemAt, RecipeError, explain, kind, path_text, show, where
 
 RECIPE_VERSION = 1
-RESAMPLE_FILTERS = ("nearest", "box", "bilinear", "hamming", "bicubic", "lanczos")
 DEFAULT_IMAGE_KEYS = ["jpg", "jpeg", "png", "webp", "gif", "bmp", "tif", "tiff"]
-
-
-#: Largest seed: seeds feed numpy's SeedSequence (any size works there) and are written into
-#: manifests and resume states, so they are kept to what a signed 64-bit integer holds.
-MAX_SEED = 2**63 - 1
 
 #: Cap on the arrays of one packed batch (patches, segment ids, coords, grids, labels, mask), so a
 #: recipe that would allocate more fails at `recipe check` instead of in the middle of a run.
@@ -71,22 +54,13 @@ FLOAT_MAX = {"float16": 65504.0, "float32": 3.4028234663852886e38}
 #: Bytes per value of each output dtype.
 DTYPE_BYTES = {"uint8": 1, "float16": 2, "float32": 4}
 
-#: File names `extends` may load.
-RECIPE_SUFFIXES = (".yaml", ".yml")
-
-
-class RecipeError(PatchloomError, ValueError):
-    """A recipe that cannot be used; the message names the file and the key path."""
-
-
-class _AtKey(ValueError):
-    """A cross-field problem raised by a model validator, reported at the key `path` (from the
-    top of the recipe) instead of at the section that found it."""
-
-    def __init__(self, path: tuple[str, ...], message: str) -> None:
-        super().__init__(message)
-        self.path = path
-
+# Names a recipe may use, read from the tables that implement them: registering a new mode, filter,
+# op or algorithm in its table is all it takes for a recipe to accept its name.
+DropModeName = Literal[tuple(DROP_MODES)]  # type: ignore[valid-type]
+SizingModeName = Literal[tuple(SIZING_MODES)]  # type: ignore[valid-type]
+ResampleName = Literal[tuple(RESAMPLE_FILTERS)]  # type: ignore[valid-type]
+PatchOpName = Literal[tuple(PATCH_OPS)]  # type: ignore[valid-type]
+AlgorithmName = Literal[tuple(ALGORITHMS)]  # type: ignore[valid-type]
 
 # Numbers and switches are strict (StrictInt, StrictFloat, StrictBool): YAML `true` is not the
 # number 1, `7.0` or `1.0e+11` is not an integer, "16" in quotes is not a number, and 1 is not
@@ -165,10 +139,10 @@ class SizingConfig(_Section):
     patch_size: StrictInt = Field(default=16, ge=1, le=1024)
     max_tokens: StrictInt = Field(default=256, ge=1)
     min_tokens: StrictInt = Field(default=1, ge=1)
-    mode: Literal["budget", "native", "fixed", "sampled"] = "budget"
+    mode: SizingModeName = "budget"
     max_aspect: StrictFloat | None = Field(default=None, ge=1.0)
     aspect_rule: Literal["crop", "pad"] = "crop"
-    resample: Literal["nearest", "box", "bilinear", "hamming", "bicubic", "lanczos"] = "bicubic"
+    resample: ResampleName = "bicubic"
     sampled: SampledTokens | None = None
 
     @model_validator(mode="after")
@@ -192,48 +166,70 @@ class SizingConfig(_Section):
 class CropConfig(_Section):
     """Random crop drawn from the image header before the size plan (native-resolution pretraining crop).
 
-    `scale` is the share of the image's area kept; `ratio` multiplies the image's own aspect
-    (w/h), so a panorama stays a panorama. No resize to a fixed size: the size plan follows.
+    `area` is the range of the share of the image's area kept; `aspect_jitter` is the range of a
+    factor applied to the image's own aspect (w/h), so a panorama stays a panorama. No resize to a
+    fixed size: the size plan follows.
     """
 
     mode: Literal["none", "random"] = "none"
-    scale: tuple[StrictFloat, StrictFloat] = (0.35, 1.0)
-    ratio: tuple[StrictFloat, StrictFloat] = (3 / 4, 4 / 3)
+    area: tuple[StrictFloat, StrictFloat] = (0.35, 1.0)
+    aspect_jitter: tuple[StrictFloat, StrictFloat] = (3 / 4, 4 / 3)
 
     @model_validator(mode="after")
     def _ranges(self) -> CropConfig:
-        lo, hi = self.scale
+        lo, hi = self.area
         if not 0 < lo <= hi <= 1:
-            raise ValueError(f"scale must be [lo, hi] with 0 < lo <= hi <= 1 (got {list(self.scale)})")
-        lo, hi = self.ratio
+            raise ValueError(f"area must be [lo, hi] with 0 < lo <= hi <= 1 (got {list(self.area)})")
+        lo, hi = self.aspect_jitter
         if not 0 < lo <= hi:
-            raise ValueError(f"ratio must be [lo, hi] with 0 < lo <= hi (got {list(self.ratio)})")
+            raise ValueError(f"aspect_jitter must be [lo, hi] with 0 < lo <= hi (got {list(self.aspect_jitter)})")
         return self
 
 
-class DropConfig(_Section):
-    """Which patch tokens to remove (apply: drop) or flag (apply: mask) before packing."""
+class BlockDrop(_Section):
+    """Options of drop mode `block`: the smallest block in patches, and the range of its h/w."""
 
-    mode: Literal["none", "random", "block", "grid", "stripes", "content"] = "none"
-    apply: Literal["drop", "mask"] = "drop"
+    min_area: StrictInt = Field(default=16, ge=1)
+    aspect: tuple[StrictFloat, StrictFloat] = (0.3, 1 / 0.3)
+
+
+class GridDrop(_Section):
+    """Options of drop mode `grid`: a fixed stride k (keep every k-th row and column) in place of a rate."""
+
+    stride: StrictInt | None = Field(default=None, ge=1)
+
+
+class ContentDrop(_Section):
+    """Options of drop mode `content`: jitter on the informativeness scores, in their std."""
+
+    noise: StrictFloat = Field(default=0.1, ge=0.0)
+
+
+class DropConfig(_Section):
+    """Which patch tokens to remove (output: remove) or flag (output: mask) before packing.
+
+    The rate settings and min_keep apply to every mode; a mode's own options sit in a sub-section
+    named after it (block, grid, content)."""
+
+    mode: DropModeName = "none"
+    output: Literal["remove", "mask"] = "remove"
     rate: StrictFloat | None = Field(default=None, ge=0.0, le=1.0)
     beta: tuple[StrictFloat, StrictFloat] | None = None
     max_keep: StrictInt | None = Field(default=None, ge=1)
     rate_curve: list[tuple[StrictInt, StrictFloat]] | None = None
     min_keep: StrictInt = Field(default=1, ge=0)
-    stride: StrictInt | None = Field(default=None, ge=1)
-    block_min_area: StrictInt = Field(default=16, ge=1)
-    block_aspect: tuple[StrictFloat, StrictFloat] = (0.3, 1 / 0.3)
-    content_noise: StrictFloat = Field(default=0.1, ge=0.0)
+    block: BlockDrop = Field(default_factory=BlockDrop)
+    grid: GridDrop = Field(default_factory=GridDrop)
+    content: ContentDrop = Field(default_factory=ContentDrop)
 
     @model_validator(mode="after")
     def _one_rate(self) -> DropConfig:
         given = [n for n in ("rate", "beta", "max_keep", "rate_curve") if getattr(self, n) is not None]
         if self.mode == "none":
             return self
-        if self.mode == "grid" and self.stride is not None:
+        if self.mode == "grid" and self.grid.stride is not None:
             if given:
-                raise ValueError("grid mode takes either `stride` or a rate setting, not both")
+                raise ValueError("grid mode takes either `grid.stride` or a rate setting, not both")
             return self
         if len(given) != 1:
             raise ValueError(
@@ -248,20 +244,17 @@ class DropConfig(_Section):
                 raise ValueError("rate_curve must be [[tokens, rate], ...] with increasing token counts")
             if any(not 0 <= r <= 1 for _, r in self.rate_curve):
                 raise ValueError("rate_curve rates must be in 0..1")
-        lo, hi = self.block_aspect
+        lo, hi = self.block.aspect
         if not 0 < lo <= hi:
-            raise ValueError(f"block_aspect must be [lo, hi] with 0 < lo <= hi (got {list(self.block_aspect)})")
+            raise ValueError(f"block.aspect must be [lo, hi] with 0 < lo <= hi (got {list(self.block.aspect)})")
         return self
-
-
-PATCH_OPS = ("standardize", "jitter", "shuffle", "noise")
 
 
 class PatchOp(_Section):
     """One patch-level operation: standardize (per-patch zero mean / unit variance), jitter
     (per-patch brightness/contrast), shuffle (token order; coords travel), noise (Gaussian)."""
 
-    name: Literal["standardize", "jitter", "shuffle", "noise"]
+    name: PatchOpName
     p: StrictFloat = Field(default=1.0, ge=0.0, le=1.0)
     brightness: StrictFloat = Field(default=0.1, ge=0.0)
     contrast: StrictFloat = Field(default=0.1, ge=0.0)
@@ -275,10 +268,10 @@ class PackingConfig(_Section):
     seq_len: StrictInt = Field(default=1024, ge=1)
     rows: StrictInt = Field(default=8, ge=1)
     max_images_per_row: StrictInt = Field(default=16, ge=1)
-    buffer: StrictInt = Field(default=64, ge=1)
+    lookahead: StrictInt = Field(default=64, ge=1)  # images the packer holds to choose rows from
     # largest_first (first fit decreasing over the look-ahead buffer, with a wait cap) left the least
     # padding in `patchloom bench --packing`; first_fit keeps arrival order within rows.
-    algorithm: Literal["largest_first", "first_fit", "best_fit", "in_order"] = "largest_first"
+    algorithm: AlgorithmName = "largest_first"
 
 
 class EpochConfig(_Section):
@@ -379,18 +372,18 @@ class Recipe(_Section):
         tokens, slots, per_token = batch_bytes(self)
         if tokens + slots > MAX_BATCH_BYTES:
             p = self.packing
-            rows = _show(p.rows)
+            rows = show(p.rows)
             if slots > tokens:
-                key, what = "max_images_per_row", f"{rows} rows x {_show(p.max_images_per_row)} images x 16 bytes"
+                key, what = "max_images_per_row", f"{rows} rows x {show(p.max_images_per_row)} images x 16 bytes"
             else:
                 key = "seq_len"
-                what = f"{rows} rows x {_show(p.seq_len)} tokens x {per_token}, plus grids and labels"
+                what = f"{rows} rows x {show(p.seq_len)} tokens x {per_token}, plus grids and labels"
             size = tokens + slots
-            shown = f"{size / (1 << 30):,.1f} GiB" if size.bit_length() < 1000 else f"{_show(size)} bytes"
-            raise _AtKey(
+            shown = f"{size / (1 << 30):,.1f} GiB" if size.bit_length() < 1000 else f"{show(size)} bytes"
+            raise ProblemAt(
                 ("packing", key),
                 f"one batch would take {shown} ({what}), over the {MAX_BATCH_BYTES >> 30} GiB cap per batch; "
-                f"lower packing.rows or packing.{key} (got {_show(getattr(p, key))})",
+                f"lower packing.rows or packing.{key} (got {show(getattr(p, key))})",
             )
         names = [op.name for op in self.patch_ops]
         if "standardize" in names:
@@ -419,7 +412,7 @@ class Recipe(_Section):
     def from_file(cls, path: str | Path) -> Recipe:
         """Load a YAML recipe (restricted safe loader), resolve its `extends` chain, and validate it."""
         path = Path(path)
-        data, provenance = _resolve_file(path, chain=())
+        data, provenance = resolve_file(path)
         return cls._validate(data, origin=str(path), provenance=provenance, in_file=True)
 
     @classmethod
@@ -428,28 +421,28 @@ class Recipe(_Section):
         data: Any,
         *,
         origin: str,
-        provenance: dict[tuple[Any, ...], str] | None = None,
+        provenance: Provenance | None = None,
         in_file: bool = False,
     ) -> Recipe:
         if data is None:
             data = {}
         if not isinstance(data, dict):
-            raise RecipeError(f"{origin}: a recipe must be a mapping of sections, got {_kind(data)}")
+            raise RecipeError(f"{origin}: a recipe must be a mapping of sections, got {kind(data)}")
         if "version" in data:  # a recipe of another version cannot be read key by key: say only that
             v = data["version"]
             if type(v) is not int or v != RECIPE_VERSION:
-                where = _where(("version",), provenance, origin)
-                raise RecipeError(f"{origin}: invalid recipe\n  {where}version: {_version_message(v)}")
-        unusable = _unusable_value(data)
+                src = where(("version",), provenance, origin)
+                raise RecipeError(f"{origin}: invalid recipe\n  {src}version: {_version_message(v)}")
+        unusable = unusable_value(data)
         if unusable is not None:
             loc, msg = unusable
-            where = _where(loc, provenance, origin)
-            raise RecipeError(f"{origin}: invalid recipe\n  {where}{_path_text(loc)}: {msg}")
+            src = where(loc, provenance, origin)
+            raise RecipeError(f"{origin}: invalid recipe\n  {src}{path_text(loc)}: {msg}")
         try:
             return cls.model_validate(data)
         except ValidationError as exc:
             raise RecipeError(
-                _explain(exc, origin, data=data, provenance=provenance, in_file=in_file)
+                explain(exc, origin, Recipe, data=data, provenance=provenance, in_file=in_file)
             ) from None
 
     def to_dict(self) -> dict[str, Any]:
@@ -460,8 +453,11 @@ class Recipe(_Section):
         return yaml.safe_dump(self.to_dict(), sort_keys=False)
 
     def fingerprint(self) -> str:
-        """Hex digest of the canonical resolved form: same settings, same fingerprint."""
-        canonical = json.dumps(self.to_dict(), sort_keys=True, separators=(",", ":"))
+        """Hex digest of the canonical resolved form: same settings, same fingerprint.
+
+        Renamed keys are hashed under their first names (fingerprint_form), so fingerprints
+        recorded before a rename still match the same settings."""
+        canonical = json.dumps(fingerprint_form(self.to_dict()), sort_keys=True, separators=(",", ":"))
         return hashlib.sha256(canonical.encode("utf-8")).hexdigest()
 
     def replace(self, **sections: dict[str, Any]) -> Recipe:
@@ -479,10 +475,10 @@ def batch_bytes(recipe: Recipe) -> tuple[int, int, str]:
     """Bytes of one packed batch's arrays under `recipe` (what packing.build_batch allocates): the
     per-token arrays, the per-image-slot arrays, and the bytes a token in words. Per token: patches
     [B, L, D] in output.dtype, segment ids [B, L] int32, coords [B, L, 2] int32, and the mask
-    [B, L] bool under drop apply: mask; per slot: grids [B, S, 2] int32 and labels [B, S] int64."""
+    [B, L] bool under drop output: mask; per slot: grids [B, S, 2] int32 and labels [B, S] int64."""
     values = recipe.sizing.patch_size**2 * 3
     itemsize = DTYPE_BYTES[recipe.output.dtype]
-    masked = recipe.drop.mode != "none" and recipe.drop.apply == "mask"
+    masked = recipe.drop.mode != "none" and recipe.drop.output == "mask"
     token = values * itemsize + 4 + 8 + (1 if masked else 0)
     slot = 8 + 8
     p = recipe.packing
@@ -491,649 +487,62 @@ def batch_bytes(recipe: Recipe) -> tuple[int, int, str]:
     return p.rows * p.seq_len * token, p.rows * p.max_images_per_row * slot, words
 
 
-def _version_message(v: Any) -> str:
-    newer = type(v) is int and v > RECIPE_VERSION
-    hint = "; a recipe written for a newer format needs a newer patchloom" if newer else ""
-    return f"must be {RECIPE_VERSION}, the only recipe version this patchloom reads (got {_show(v)}){hint}"
-
-
-# ---------------------------------------------------------------------------------------------
-# YAML: the safe loader, narrowed to plain data and bounded in size.
-
-MAX_RECIPE_BYTES = 1 << 20  # a recipe is a page of settings; anything near this is not one
-MAX_RECIPE_NODES = 100_000  # values after expanding aliases (stops alias bombs before they expand)
-MAX_RECIPE_DEPTH = 64  # nesting of mappings and lists
-MAX_NUMBER_CHARS = 64  # an integer written longer than this is kept as _LongNumber, never converted
-
-_YAML_TAG_PREFIX = "tag:yaml.org,2002:"
-_MERGE_TAG = _YAML_TAG_PREFIX + "merge"
-_REFUSED_STD_TAGS = {_YAML_TAG_PREFIX + t for t in ("binary", "set", "omap", "pairs")}
-
-
-class _Refused(yaml.YAMLError):
-    """A YAML document that parses but is not acceptable as a recipe."""
-
-    def __init__(self, message: str, mark: Any = None) -> None:
-        super().__init__(message)
-        self.message = message
-        self.mark = mark
-
-    def __str__(self) -> str:
-        return f"{_line(self.mark)}{self.message}"
-
-
-def _line(mark: Any) -> str:
-    return f"line {mark.line + 1}: " if mark is not None else ""
-
-
-def _short_tag(tag: str) -> str:
-    return "!!" + tag[len(_YAML_TAG_PREFIX):] if tag.startswith(_YAML_TAG_PREFIX) else tag
-
-
-class _RecipeLoader(yaml.SafeLoader):
-    """The safe loader with limits: plain data only (mappings, lists, strings, numbers, booleans,
-    null), bounded nesting; the composed tree is checked for size and duplicate keys before any
-    value is built."""
-
-    def __init__(self, stream: str) -> None:
-        super().__init__(stream)
-        self._depth = 0
-
-    def compose_node(self, parent: Any, index: Any) -> Any:
-        self._depth += 1
-        try:
-            if self._depth > MAX_RECIPE_DEPTH:
-                raise _Refused(
-                    f"nested more than {MAX_RECIPE_DEPTH} levels deep; a recipe is a few levels of settings",
-                    self.peek_event().start_mark,
-                )
-            return super().compose_node(parent, index)
-        finally:
-            self._depth -= 1
-
-
-def _refuse_tag(loader: _RecipeLoader, *args: Any) -> Any:
-    node = args[-1]  # a multi-constructor also gets the tag's suffix first
-    tag = _short_tag(node.tag)
-    if node.tag.startswith(_YAML_TAG_PREFIX + "python/"):
-        why = "a recipe is data, so it cannot create Python objects or run code"
-    else:
-        why = "a recipe holds only mappings, lists, strings, numbers, true/false and null"
-    raise _Refused(f"tag {tag!r} is refused: {why}", node.start_mark)
-
-
-class _LongNumber:
-    """Stands in for a YAML integer too long to convert (Python refuses over 4300 digits, and no
-    setting needs more than 19), so validation can name its key instead of failing in the loader."""
-
-    def __init__(self, text: str) -> None:
-        self.length = len(text)
-
-    def __repr__(self) -> str:
-        return f"a number {self.length} characters long"
-
-
-def _int_or_long(loader: _RecipeLoader, node: yaml.Node) -> int | _LongNumber:
-    text = loader.construct_scalar(node)
-    if len(text) > MAX_NUMBER_CHARS:
-        return _LongNumber(text)
-    return loader.construct_yaml_int(node)
-
-
-def _timestamp_as_text(loader: _RecipeLoader, node: yaml.Node) -> str:
-    # YAML 1.1 reads an unquoted 2024-01-01 as a date; a recipe has no dates, so keep the text.
-    return loader.construct_scalar(node)
-
-
-_RecipeLoader.add_constructor(None, _refuse_tag)
-for _tag in _REFUSED_STD_TAGS:
-    _RecipeLoader.add_constructor(_tag, _refuse_tag)
-_RecipeLoader.add_constructor(_YAML_TAG_PREFIX + "timestamp", _timestamp_as_text)
-_RecipeLoader.add_constructor(_YAML_TAG_PREFIX + "int", _int_or_long)
-# YAML 1.1 reads `1e-6` (no dot, or an unsigned exponent) as text; read it as the number it is, as
-# YAML 1.2 does, since numbers are strict (a float setting refuses text).
-_RecipeLoader.add_implicit_resolver(
-    _YAML_TAG_PREFIX + "float", re.compile(r"^[-+]?[0-9][0-9_]*(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"), list("-+0123456789")
-)
-# Python tags are not registered by the safe loader; listing them anyway keeps the refusal explicit.
-_RecipeLoader.add_multi_constructor(_YAML_TAG_PREFIX + "python/", _refuse_tag)
-
-
-def _check_tree(loader: _RecipeLoader, root: yaml.Node) -> None:
-    """Count values with aliases expanded (a shared node counts each time it is used), refuse a
-    structure that contains itself, and refuse duplicate keys in a mapping."""
-    sizes: dict[int, int] = {}
-    open_nodes: set[int] = set()
-
-    def size(node: yaml.Node) -> int:
-        nid = id(node)
-        if nid in sizes:
-            return sizes[nid]
-        if nid in open_nodes:
-            raise _Refused("an alias refers to a node that contains it (a recursive structure)", node.start_mark)
-        total = 1
-        if isinstance(node, (yaml.SequenceNode, yaml.MappingNode)):
-            open_nodes.add(nid)
-            if isinstance(node, yaml.MappingNode):
-                _check_duplicates(loader, node)
-                children = [c for pair in node.value for c in pair]
-            else:
-                children = list(node.value)
-            for child in children:
-                total += size(child)
-                if total > MAX_RECIPE_NODES:
-                    raise _Refused(
-                        f"more than {MAX_RECIPE_NODES} values once aliases are expanded; "
-                        f"a recipe is far smaller, so this looks like aliases nested to multiply each other",
-                        node.start_mark,
-                    )
-            open_nodes.discard(nid)
-        sizes[nid] = total
-        return total
-
-    size(root)
-
-
-def _check_duplicates(loader: _RecipeLoader, node: yaml.MappingNode) -> None:
-    seen: dict[Any, int] = {}
-    for key_node, _ in node.value:
-        if not isinstance(key_node, yaml.ScalarNode) or key_node.tag == _MERGE_TAG:
-            continue  # `<<` merge keys may be overridden by the mapping's own keys; complex keys fail later
-        key = loader.construct_object(key_node)
-        line = key_node.start_mark.line + 1
-        try:
-            first = seen.get(key)
-        except TypeError:
-            continue
-        if first is not None:
-            raise _Refused(
-                f"key {_show(key)} appears twice in one mapping (lines {first} and {line}); "
-                f"YAML would silently keep the last one, so write it once",
-                key_node.start_mark,
-            )
-        seen[key] = line
-
-
-def _load_yaml(path: Path) -> Any:
-    """Read one recipe file into plain data; every failure is a RecipeError naming the file.
-
-    At most MAX_RECIPE_BYTES + 1 bytes are read, so a device or a file that grows cannot fill memory."""
-    try:
-        with path.open("rb") as f:
-            raw = f.read(MAX_RECIPE_BYTES + 1)
-            size = os.fstat(f.fileno()).st_size
-    except OSError as exc:
-        raise RecipeError(f"cannot read recipe {path}: {exc.strerror or exc}") from None
-    if len(raw) > MAX_RECIPE_BYTES:
-        shown = size if size > MAX_RECIPE_BYTES else f"more than {MAX_RECIPE_BYTES}"
-        raise RecipeError(
-            f"{path}: refused: {shown} bytes is over the {MAX_RECIPE_BYTES >> 20} MiB limit for a recipe file"
-        )
-    try:
-        text = raw.decode("utf-8")
-    except UnicodeDecodeError as exc:
-        raise RecipeError(f"{path}: not UTF-8 text (bad byte at offset {exc.start})") from None
-    try:
-        loader = _RecipeLoader(text)  # the reader refuses control characters here, before parsing
-    except yaml.reader.ReaderError as exc:
-        raise RecipeError(f"{path}: not valid YAML for a recipe: {_reader_problem(text, exc)}") from None
-    try:
-        node = loader.get_single_node()
-        if node is None:
-            return None
-        _check_tree(loader, node)
-        return loader.construct_document(node)
-    except _Refused as exc:
-        # "not valid YAML for a recipe": the text may be valid YAML, but not as a recipe.
-        raise RecipeError(f"{path}: not valid YAML for a recipe: {exc}") from None
-    except yaml.MarkedYAMLError as exc:
-        raise RecipeError(f"{path}: not valid YAML: {_yaml_problem(exc)}") from None
-    except yaml.YAMLError as exc:
-        raise RecipeError(f"{path}: not valid YAML: {' '.join(str(exc).split())}") from None
-    except RecursionError:
-        raise RecipeError(f"{path}: not valid YAML for a recipe: nested too deeply") from None
-    finally:
-        loader.dispose()
-
-
-def _reader_problem(text: str, exc: yaml.reader.ReaderError) -> str:
-    """PyYAML's refusal of a character, as line, column and what to do."""
-    pos = max(0, min(int(exc.position), len(text)))
-    line = text.count("\n", 0, pos) + 1
-    column = pos - (text.rfind("\n", 0, pos) + 1) + 1
-    code = exc.character if isinstance(exc.character, int) else ord(str(exc.character)[:1] or "\0")
-    return (f"line {line}, column {column}: control character U+{code:04X} is not allowed in a recipe; "
-            f"remove it")
-
-
-def _yaml_problem(exc: yaml.MarkedYAMLError) -> str:
-    """PyYAML's several-line error, as one line: where, what, and what it was inside."""
-    text = exc.problem or "unreadable"
-    if exc.problem_mark is not None:
-        text = f"line {exc.problem_mark.line + 1}, column {exc.problem_mark.column + 1}: {text}"
-    if exc.context:
-        where = ""
-        if exc.context_mark is not None:
-            where = f" at line {exc.context_mark.line + 1}, column {exc.context_mark.column + 1}"
-        text += f" ({exc.context}{where})"
-    return text
-
-
-# ---------------------------------------------------------------------------------------------
-# extends: resolve a chain of files into one mapping, remembering which file set each value.
-
-Provenance = dict[tuple[Any, ...], str]
-
-
-def _resolve_file(path: Path, chain: tuple[Path, ...]) -> tuple[Any, Provenance]:
-    """The file's data with its `extends` chain merged in, and the file that set each leaf value."""
-    here = path.resolve()
-    if here in (p.resolve() for p in chain):
-        names = " -> ".join(str(p) for p in (*chain, path))
-        raise RecipeError(f"{path}: extends cycle: {names}")
-    data = _load_yaml(path)
-    if not isinstance(data, dict) or "extends" not in data:
-        provenance: Provenance = {}
-        if isinstance(data, dict):
-            _record_leaves(data, (), str(path), provenance)
-        elif data is not None:
-            raise RecipeError(f"{path}: a recipe must be a mapping of sections, got {_kind(data)}")
-        return data, provenance
-    data = dict(data)
-    target = data.pop("extends")
-    if not isinstance(target, str) or not target.strip():
-        raise RecipeError(
-            f"{path}: invalid recipe\n  extends: must be the path of a base recipe file, relative to this "
-            f"file (got {_show(target)})"
-        )
-    base_path = _base_file(path, target)
-    base, provenance = _resolve_file(base_path, (*chain, path))
-    if base is None:
-        base = {}
-    return _merge(base, data, (), str(path), provenance), provenance
-
-
-def _base_file(path: Path, target: str) -> Path:
-    """The base file `extends: target` names, once it is known to be a recipe: a regular file (not a
-    device, pipe or folder) named .yaml or .yml, also after following links, within the size cap."""
-    def refuse(why: str) -> RecipeError:
-        return RecipeError(f"{path}: invalid recipe\n  extends: {why} (got {_show(target)})")
-
-    bad = _CONTROL.search(target)
-    if bad:
-        raise refuse(f"contains control character U+{ord(bad.group()):04X}; remove it")
-    base_path = path.parent / target
-    try:
-        real = base_path.resolve()
-    except (OSError, RuntimeError) as exc:  # a link loop
-        raise refuse(f"cannot be followed to a file ({exc})") from None
-    if base_path.suffix.lower() not in RECIPE_SUFFIXES or real.suffix.lower() not in RECIPE_SUFFIXES:
-        named = "" if real.name == base_path.name else f", a link to {real}"
-        raise refuse(f"must name a recipe file ending in .yaml or .yml{named}")
-    try:
-        info = base_path.stat()
-    except OSError:
-        info = None
-    if info is None or not stat.S_ISREG(info.st_mode):
-        reason = "no such file" if info is None else (
-            "is a folder" if stat.S_ISDIR(info.st_mode) else "is not a regular file (a device, pipe or socket)")
-        raise RecipeError(f"{path}: extends {target!r}: cannot read recipe {base_path}: {reason}")
-    if info.st_size > MAX_RECIPE_BYTES:
-        raise refuse(f"{base_path} is {info.st_size} bytes, over the {MAX_RECIPE_BYTES >> 20} MiB limit")
-    return base_path
-
-
-def _record_leaves(data: dict[str, Any], prefix: tuple[Any, ...], origin: str, provenance: Provenance) -> None:
-    for key, value in data.items():
-        if isinstance(value, dict) and value:
-            _record_leaves(value, (*prefix, key), origin, provenance)
-        else:
-            provenance[(*prefix, key)] = origin
-
-
-def _forget(provenance: Provenance, prefix: tuple[Any, ...]) -> None:
-    for p in [p for p in provenance if p[: len(prefix)] == prefix]:
-        del provenance[p]
-
-
-def _merge(
-    base: dict[str, Any], over: dict[str, Any], prefix: tuple[Any, ...], origin: str, provenance: Provenance
-) -> dict[str, Any]:
-    """`over` on top of `base`: mappings merge, anything else replaces, null removes the key."""
-    out = dict(base)
-    for key, value in over.items():
-        where = (*prefix, key)
-        below = out.get(key)
-        if value is None:
-            out.pop(key, None)
-            _forget(provenance, where)
-        elif isinstance(value, dict):
-            if not isinstance(below, dict):
-                _forget(provenance, where)
-                below = {}
-            out[key] = _merge(below, value, where, origin, provenance)
-            if not value and not out[key]:
-                provenance[where] = origin
-        else:
-            _forget(provenance, where)
-            out[key] = value
-            provenance[where] = origin
+def fingerprint_form(settings: dict[str, Any]) -> dict[str, Any]:
+    """`settings` (Recipe.to_dict()) with every renamed key (messages.RENAMES) moved back to its
+    first name and value, and the sub-sections the renames emptied removed: the form fingerprints
+    are taken of, so that renaming a key does not change any recipe's fingerprint."""
+    out = copy.deepcopy(settings)
+    emptied: set[tuple[str, ...]] = set()
+    for r in RENAMES.values():
+        *new_parents, new_key = r.new.split(".")
+        *old_parents, old_key = r.old.split(".")
+        below = _section_at(out, new_parents)
+        value = below.pop(new_key)
+        if r.values:
+            value = {new: old for old, new in r.values}.get(value, value)
+        _section_at(out, old_parents)[old_key] = value
+        if len(new_parents) > 1:
+            emptied.add(tuple(new_parents))
+    for *parents, name in emptied:
+        if _section_at(out, parents)[name] == {}:
+            del _section_at(out, parents)[name]
     return out
 
 
-def _where(loc: tuple[Any, ...], provenance: Provenance | None, origin: str) -> str:
-    """'' when the value at `loc` came from the file being loaded, else 'BASE-FILE: '."""
-    if not provenance:
-        return ""
-    for n in range(len(loc), 0, -1):
-        if loc[:n] in provenance:
-            src = provenance[loc[:n]]
-            break
-    else:
-        files = {f for p, f in provenance.items() if p[: len(loc)] == loc}
-        src = files.pop() if len(files) == 1 else origin
-    return "" if src == origin else f"{src}: "
-
-
-# ---------------------------------------------------------------------------------------------
-# Error messages: one line per problem, naming the key path and what is allowed there.
-
-
-# C0 and C1 control characters (Unicode category Cc), tab and newline included: no setting needs
-# one, and printed in an error they could rewrite the terminal.
-_CONTROL = re.compile("[\x00-\x1f\x7f-\x9f]")
-
-
-def _unusable_value(data: Any) -> tuple[tuple[Any, ...], str] | None:
-    """(key path, problem) for the first value no setting can take whatever the schema says: a
-    string or key with a control character, or an integer too large for any setting. Checked
-    before validation so that the problem is reported at its key, in one line."""
-    stack: list[tuple[tuple[Any, ...], Any]] = [((), data)]
-    seen: set[int] = set()
-    while stack:
-        path, value = stack.pop()
-        if isinstance(value, str):
-            bad = _CONTROL.search(value)
-            if bad:
-                return path, (f"contains control character U+{ord(bad.group()):04X} at position {bad.start()}; "
-                              f"remove it (got {_show(value)})")
-        elif isinstance(value, _LongNumber) or (
-            isinstance(value, int) and not isinstance(value, bool) and abs(value) > MAX_SEED
-        ):
-            return path, (f"{_show(value)} is too large for any setting (seed takes 0..{MAX_SEED}; sizes and "
-                          f"counts are far smaller)")
-        elif isinstance(value, (dict, list, tuple)) and id(value) not in seen:
-            seen.add(id(value))
-            if isinstance(value, dict):
-                items = list(value.items())
-                for key, _ in items:
-                    bad = _CONTROL.search(key) if isinstance(key, str) else None
-                    if bad:
-                        return path, (f"key {_show(key)} contains control character U+{ord(bad.group()):04X}; "
-                                      f"remove it")
-            else:
-                items = list(enumerate(value))
-            stack.extend(((*path, k), v) for k, v in reversed(items))
-    return None
-
-
-def _path_text(path: tuple[Any, ...]) -> str:
-    return ".".join(str(p) for p in path)
-
-
-def _plain(ann: Any) -> Any:
-    """int for `Annotated[int, Strict()]` (StrictInt); the annotation itself otherwise."""
-    return typing.get_args(ann)[0] if typing.get_origin(ann) is Annotated else ann
-
-
-def _strip_none(ann: Any) -> Any:
-    """X for `X | None`; the annotation itself otherwise (strictness markers removed)."""
-    if _is_union(ann):
-        args = [a for a in typing.get_args(ann) if a is not type(None)]
-        if len(args) == 1:
-            return _plain(args[0])
-    return _plain(ann)
-
-
-def _is_union(ann: Any) -> bool:
-    return typing.get_origin(ann) in (typing.Union, types.UnionType)
-
-
-def _model_of(ann: Any) -> type[BaseModel] | None:
-    ann = _strip_none(ann)
-    return ann if isinstance(ann, type) and issubclass(ann, BaseModel) else None
-
-
-def _follow(loc: tuple[Any, ...]) -> tuple[tuple[Any, ...], Any, bool]:
-    """Walk an error location through the schema.
-
-    Returns the location to report, the annotation there (None where the schema says nothing:
-    an unknown key, or free-form data) and whether the location ends at a union whose member
-    names pydantic had put into the location (those are reported once, at the union)."""
-    ann: Any = Recipe
-    path: list[Any] = []
-    for n, part in enumerate(loc):
-        if ann is None:
-            return (*path, *loc[n:]), None, False
-        model = _model_of(ann)
-        inner = _strip_none(ann)
-        if model is not None:
-            if isinstance(part, str) and part in model.model_fields:
-                ann = model.model_fields[part].annotation
-                path.append(part)
-                continue
-            return (*path, *loc[n:]), None, False
-        if _is_union(inner):
-            return tuple(path), ann, True
-        origin = typing.get_origin(inner)
-        args = typing.get_args(inner)
-        if isinstance(part, int) and origin is list:
-            ann = args[0]
-        elif isinstance(part, int) and origin is tuple:
-            ann = args[0] if len(args) == 2 and args[1] is Ellipsis else (args[part] if part < len(args) else None)
+def current_names(data: dict[str, Any]) -> dict[str, Any]:
+    """A recipe mapping written with the first names of renamed keys (e.g. the recipe recorded in
+    a folder packed before the renames) under the current names and values; the inverse of
+    fingerprint_form. Recipes people write should fail on an old key instead (one line names the
+    new one), so only call this on recipes an older patchloom wrote itself."""
+    out = copy.deepcopy(data)
+    for r in RENAMES.values():
+        *old_parents, old_key = r.old.split(".")
+        *new_parents, new_key = r.new.split(".")
+        below: Any = out
+        for part in old_parents:
+            below = below.get(part) if isinstance(below, dict) else None
+        if not isinstance(below, dict) or old_key not in below:
+            continue
+        value = below.pop(old_key)
+        if r.values and isinstance(value, str):
+            value = dict(r.values).get(value, value)
+        target = out
+        for part in new_parents:
+            target = target.setdefault(part, {})
+            if not isinstance(target, dict):
+                break
         else:
-            ann = None
-        path.append(part)
-    return tuple(path), ann, False
+            target[new_key] = value
+    return out
 
 
-def _lookup(data: Any, loc: tuple[Any, ...]) -> Any:
-    for part in loc:
-        try:
-            data = data[part]
-        except (KeyError, IndexError, TypeError):
-            return _NOTHING
+def _section_at(data: dict[str, Any], path: list[str] | tuple[str, ...]) -> dict[str, Any]:
+    for part in path:
+        data = data[part]
     return data
 
 
-_NOTHING = object()
-
-_WORDS: dict[Any, tuple[str, str]] = {
-    str: ("a string", "strings"),
-    int: ("an integer", "integers"),
-    float: ("a number", "numbers"),
-    bool: ("true or false", "true/false values"),
-    type(None): ("null", "nulls"),
-}
-
-
-def _describe(ann: Any, plural: bool = False) -> str:
-    """What a value of this annotation looks like, in words."""
-    ann = _plain(ann)
-    if ann in _WORDS:
-        return _WORDS[ann][plural]
-    origin = typing.get_origin(ann)
-    args = typing.get_args(ann)
-    if origin is Literal:
-        choices = ", ".join(_show(a) for a in args)
-        return f"one of {choices}" if len(args) > 1 else _show(args[0])
-    if _is_union(ann):
-        parts = [_describe(a, plural) for a in args]
-        return ", ".join(parts[:-1]) + " or " + parts[-1]
-    if origin is list:
-        return "lists" if plural else f"a list of {_describe(args[0], plural=True)}"
-    if origin is tuple:
-        if len(set(args)) == 1:
-            text = f"{len(args)} {_describe(args[0], plural=True)}"
-            return f"lists of {text}" if plural else f"a list of {text}"
-        inner = ", ".join(_describe(a).removeprefix("a ").removeprefix("an ") for a in args)
-        return f"[{inner}] pairs" if plural and len(args) == 2 else f"[{inner}]"
-    model = _model_of(ann)
-    if model is not None:
-        return "mappings" if plural else f"a mapping with keys {', '.join(model.model_fields)}"
-    if origin is dict:
-        return "mappings" if plural else "a mapping"
-    return "values" if plural else "a value"
-
-
-def _show(value: Any, limit: int = 60) -> str:
-    """A value as a reader of the YAML file would write it, shortened."""
-    if value is True or value is False:
-        text = "true" if value else "false"
-    elif isinstance(value, int) and value.bit_length() > 128:  # repr() refuses over 4300 digits
-        text = f"a number of about {int(value.bit_length() * math.log10(2)) + 1} digits"
-    elif value is None:
-        text = "null"
-    elif isinstance(value, (list, tuple)):
-        text = "[" + ", ".join(_show(v, limit) for v in value) + "]"
-    elif isinstance(value, dict):
-        text = "{" + ", ".join(f"{_show(k, limit)}: {_show(v, limit)}" for k, v in value.items()) + "}"
-    else:
-        text = repr(value)
-    return text if len(text) <= limit else text[: limit - 3] + "..."
-
-
-def _kind(value: Any) -> str:
-    return {list: "a list", str: "a string", int: "a number", float: "a number", bool: "true/false"}.get(
-        type(value), type(value).__name__
-    )
-
-
-def _section_fields() -> dict[str, list[str]]:
-    """Every key name of the top level and of each section, to the paths that have it."""
-    found: dict[str, list[str]] = {}
-    for name, field in Recipe.model_fields.items():
-        found.setdefault(name, []).append(name)
-        model = _model_of(field.annotation)
-        if model is not None:
-            for sub in model.model_fields:
-                found.setdefault(sub, []).append(f"{name}.{sub}")
-    return found
-
-
-def _unknown_key(path: tuple[Any, ...], in_file: bool) -> str:
-    model = _model_of(_follow(path[:-1])[1])
-    allowed = list(model.model_fields) if model is not None else []
-    if not path[:-1] and in_file:
-        allowed.append("extends")
-    key = path[-1]
-    msg = "unknown key"
-    if isinstance(key, str):  # (a key that is not a string is reported as invalid_key instead)
-        lowered = {a.lower(): a for a in allowed}
-        close = difflib.get_close_matches(key.lower(), list(lowered), n=1, cutoff=0.6)
-        here = ".".join(str(p) for p in path[:-1])
-        elsewhere = [p for p in _section_fields().get(key, []) if p.rpartition(".")[0] != here]
-        if close:
-            msg += f"; did you mean {lowered[close[0]]!r}?"
-        elif elsewhere:
-            msg += f"; did you mean {' or '.join(repr(p) for p in elsewhere)}?"
-    return f"{msg} (allowed: {', '.join(allowed)})" if allowed else msg
-
-
-_QUOTE_HINT = "quote it: YAML reads unquoted yes/no/on/off/true/false as booleans and digits as numbers"
-_RANGE = {"greater_than_equal": (">=", "ge"), "greater_than": (">", "gt"),
-          "less_than_equal": ("<=", "le"), "less_than": ("<", "lt")}
-_TYPE_ERRORS = {
-    "int_parsing", "int_type", "float_parsing", "float_type", "bool_parsing", "bool_type", "string_type",
-    "list_type", "tuple_type", "dict_type", "model_type", "model_attributes_type", "too_short", "too_long",
-    "string_too_short", "string_too_long", "int_parsing_size", "none_required",
-}
-
-
-def _problem(err: Any, data: Any, in_file: bool) -> tuple[tuple[Any, ...], str]:
-    """(location, message) for one pydantic error."""
-    kind = err["type"]
-    path, ann, at_union = _follow(tuple(err["loc"]))
-    got = err.get("input")
-    cause = (err.get("ctx") or {}).get("error")
-    if isinstance(cause, _AtKey):
-        return cause.path, " ".join(str(cause).split())
-    if at_union or (kind == "missing" and path and isinstance(path[-1], int)):
-        if kind == "missing":
-            path = path[:-1]
-            ann = _follow(path)[1]
-        got = _lookup(data, path)
-        shown = "" if got is _NOTHING else f" (got {_show(got)})"
-        return path, f"must be {_describe(ann)}{shown}"
-    if kind == "extra_forbidden":
-        return path, _unknown_key(path, in_file)
-    if kind == "invalid_key":  # pydantic puts the key into the location; True shows as 1 there
-        model = _model_of(_follow(path[:-1])[1])
-        allowed = f" (allowed: {', '.join(model.model_fields)})" if model is not None else ""
-        return path[:-1], f"key {_show(got)} is not a string; {_QUOTE_HINT}{allowed}"
-    if kind == "missing":
-        what = f": {_describe(ann)}" if ann is not None else ""
-        return path, f"required key is missing{what}"
-    if kind == "literal_error":
-        choices = list(typing.get_args(_strip_none(ann))) if ann is not None else []
-        allowed = ", ".join(_show(c) for c in choices) or err["ctx"]["expected"]
-        hint = ""
-        if isinstance(got, str):
-            close = difflib.get_close_matches(got, [str(c) for c in choices], n=1)
-            hint = f"; did you mean {close[0]!r}?" if close else ""
-        return path, f"must be one of {allowed} (got {_show(got)}{hint})"
-    if kind in _RANGE:
-        op, name = _RANGE[kind]
-        return path, f"must be {op} {err['ctx'][name]} (got {_show(got)})"
-    if kind == "int_from_float":
-        return path, f"must be a whole number (got {_show(got)})"
-    if kind == "finite_number":
-        return path, f"must be a finite number, not NaN or infinity (got {_show(got)})"
-    if kind == "int_type" and isinstance(got, float) and not isinstance(got, bool):
-        if got.is_integer():
-            return path, f"must be an integer, written without a decimal point or exponent (got {_show(got)})"
-        return path, f"must be a whole number (got {_show(got)})"
-    if kind in _TYPE_ERRORS:
-        what = _describe(ann) if ann is not None else err["msg"].replace("Input should be ", "")
-        if kind in ("int_type", "float_type") and isinstance(got, bool):
-            what += ", not true/false"
-        msg = f"must be {what} (got {_show(got)})"
-        if kind == "string_type" and isinstance(got, (bool, int, float)):
-            msg += f"; {_QUOTE_HINT}"
-        elif kind in ("int_type", "float_type") and isinstance(got, str) and _number_text(got):
-            msg += "; write the number without quotes"
-        return path, msg
-    msg = " ".join(err["msg"].split()).removeprefix("Value error, ").removeprefix("Assertion failed, ")
-    msg = msg.replace("Input should be", "must be")
-    if kind == "value_error":  # our validators say what they got; a section's input is the whole section
-        if "(got " not in msg and not isinstance(got, (dict, list, tuple)):
-            msg += f" (got {_show(got)})"
-    elif not isinstance(got, dict):
-        msg += f" (got {_show(got)})"
-    return path, msg
-
-
-def _number_text(text: str) -> bool:
-    try:
-        float(text)
-    except ValueError:
-        return False
-    return True
-
-
-def _explain(
-    exc: ValidationError,
-    origin: str,
-    *,
-    data: Any = None,
-    provenance: Provenance | None = None,
-    in_file: bool = False,
-) -> str:
-    lines = [f"{origin}: invalid recipe"]
-    for err in exc.errors():
-        path, msg = _problem(err, data, in_file)
-        loc = ".".join(str(p) for p in path)
-        line = f"  {_where(path, provenance, origin)}{loc + ': ' if loc else ''}{msg}"
-        if line not in lines:
-            lines.append(line)
-    return "\n".join(lines)
+def _version_message(v: Any) -> str:
+    newer = type(v) is int and v > RECIPE_VERSION
+    hint = "; a recipe written for a newer format needs a newer patchloom" if newer else ""
+    return f"must be {RECIPE_VERSION}, the only recipe version this patchloom reads (got {show(v)}){hint}"
