@@ -89,7 +89,7 @@ def test_target_rate_beta_draws_per_image_and_grid_stride_is_nominal() -> None:
     cfg = DropConfig(mode="random", beta=(2.0, 5.0))
     rates = [target_rate(cfg, 196, np.random.default_rng(s)) for s in range(20)]
     assert all(0.0 < r < 1.0 for r in rates) and len(set(rates)) == 20
-    assert target_rate(DropConfig(mode="grid", stride=2), 196, np.random.default_rng(0)) == 0.75
+    assert target_rate(DropConfig(mode="grid", grid={"stride": 2}), 196, np.random.default_rng(0)) == 0.75
 
 
 # --- random ---------------------------------------------------------------------------------
@@ -399,7 +399,7 @@ def test_apply_drop_keeps_raster_coords_and_matching_patches() -> None:
     ps = image_patchset()
     before = ps.patches.copy()
     d = decide_drop(DropConfig(mode="random", rate=0.4), ps.grid, ps.patches, np.random.default_rng(2))
-    out = apply_drop(ps, d, "drop")
+    out = apply_drop(ps, d, "remove")
     kept = np.flatnonzero(d.keep)
     np.testing.assert_array_equal(out.coords, np.stack(np.divmod(kept, 7), axis=1))  # raster order
     np.testing.assert_array_equal(out.patches, before[kept])
@@ -411,7 +411,7 @@ def test_apply_drop_keeps_raster_coords_and_matching_patches() -> None:
 
 def test_apply_drop_mask_keeps_every_token() -> None:
     ps = image_patchset()
-    d = decide_drop(DropConfig(mode="block", rate=0.5, block_min_area=4), ps.grid, None, np.random.default_rng(0))
+    d = decide_drop(DropConfig(mode="block", rate=0.5, block={"min_area": 4}), ps.grid, None, np.random.default_rng(0))
     out = apply_drop(ps, d, "mask")
     np.testing.assert_array_equal(out.patches, ps.patches)
     np.testing.assert_array_equal(out.coords, ps.coords)
@@ -425,7 +425,7 @@ def test_apply_drop_matches_tokens_by_coords_when_reordered() -> None:
     order = np.random.default_rng(4).permutation(35)
     shuffled = PatchSet(ps.patches[order], ps.coords[order], ps.grid, ps.key)
     d = decide_drop(DropConfig(mode="stripes", rate=0.3), ps.grid, None, np.random.default_rng(1))
-    out = apply_drop(shuffled, d, "drop")
+    out = apply_drop(shuffled, d, "remove")
     flat = out.coords[:, 0] * 7 + out.coords[:, 1]
     assert d.keep[flat].all() and out.num_tokens == d.kept
     np.testing.assert_array_equal(out.patches, ps.patches[flat])  # each patch still beside its coords
@@ -436,23 +436,60 @@ def test_apply_drop_refuses_mismatches() -> None:
     ps = image_patchset()
     d = decide_drop(DropConfig(mode="random", rate=0.5), (5, 6), None, np.random.default_rng(0))
     with pytest.raises(ValueError, match="img-1"):
-        apply_drop(ps, d, "drop")
+        apply_drop(ps, d, "remove")
     with pytest.raises(ValueError, match="how"):
         apply_drop(ps, DropDecision(np.ones(35, dtype=bool), 0.0), "hide")
 
 
 
-@pytest.mark.parametrize("how", ["drop", "mask"])
+@pytest.mark.parametrize("how", ["remove", "mask"])
 def test_recipe_drop_section_through_image_to_patches(how) -> None:
     from patchloom import Recipe, image_to_patches
 
     img = np.random.default_rng(0).integers(0, 256, (224, 224, 3), dtype=np.uint8)
-    recipe = Recipe.from_dict({"sizing": {"max_tokens": 196}, "drop": {"mode": "random", "rate": 0.5, "apply": how}})
+    recipe = Recipe.from_dict({"sizing": {"max_tokens": 196}, "drop": {"mode": "random", "rate": 0.5, "output": how}})
     ps = image_to_patches(img, recipe, key="a")
     again = image_to_patches(img, recipe, key="a")
     np.testing.assert_array_equal(ps.coords, again.coords)
     assert ps.meta["drop"] == {"mode": "random", "rate": 0.5, "kept": 98, "total": 196}
-    if how == "drop":
+    if how == "remove":
         assert ps.num_tokens == 98 and ps.masked is None
     else:
         assert ps.num_tokens == 196 and int(ps.masked.sum()) == 98
+
+
+# --- the DROP_MODES table --------------------------------------------------------------------
+
+
+def test_every_drop_mode_in_the_table_is_reached_through_decide_drop() -> None:
+    from patchloom.image.dropping import DROP_MODES
+
+    assert set(MODES) | {"none"} == set(DROP_MODES)
+    grid = (8, 8)
+    for name, mode in DROP_MODES.items():
+        cfg = DropConfig(mode=name) if name == "none" else DropConfig(mode=name, rate=0.5)
+        d = decide_drop(cfg, grid, noise_patches(grid), np.random.default_rng(3))
+        rng = np.random.default_rng(3)
+        rate = target_rate(cfg, 64, rng)
+        keep, blocks = mode(grid, rate, cfg, rng, lambda: noise_patches(grid))
+        np.testing.assert_array_equal(d.keep, keep)
+        assert (d.mode, d.rate, d.blocks) == (name, rate, tuple(blocks))
+        assert (d.kept == 64) if name == "none" else (d.kept < 64), name
+
+
+def test_a_mode_added_to_the_table_is_dispatched(monkeypatch) -> None:
+    from patchloom.image.dropping import DROP_MODES
+
+    def every_other(grid, rate, cfg, rng, patches):
+        return np.arange(grid[0] * grid[1]) % 2 == 0, ()
+
+    monkeypatch.setitem(DROP_MODES, "every_other", every_other)
+    cfg = DropConfig(mode="random", rate=0.5).model_copy(update={"mode": "every_other"})
+    d = decide_drop(cfg, (2, 3), None, np.random.default_rng(0))
+    assert d.keep.tolist() == [True, False, True, False, True, False] and d.mode == "every_other"
+
+
+def test_unknown_drop_mode_names_the_recipe_key_and_the_known_modes() -> None:
+    cfg = DropConfig(mode="random", rate=0.5).model_copy(update={"mode": "checkers"})
+    with pytest.raises(ValueError, match=r"unknown drop mode 'checkers'.*drop\.mode.*none, random, block"):
+        decide_drop(cfg, (4, 4), None, np.random.default_rng(0))

@@ -75,7 +75,7 @@ def test_recipe_rules_for_standardize():
 @pytest.mark.parametrize("hw", [(300, 400), (100, 900), (900, 120), (7, 5)])
 def test_random_crop_keeps_area_share_and_relative_aspect(hw):
     h, w = hw
-    cfg = CropConfig(mode="random", scale=(0.3, 0.9), ratio=(0.8, 1.25))
+    cfg = CropConfig(mode="random", area=(0.3, 0.9), aspect_jitter=(0.8, 1.25))
     rng = np.random.default_rng(0)
     for _ in range(200):
         left, top, right, bottom = draw_crop(h, w, cfg, rng)
@@ -110,3 +110,39 @@ def test_masked_flags_are_packed_with_their_tokens():
     plain = pack([PatchSet(np.zeros((2, 3), np.uint8), grid_coords(1, 2), (1, 2), "x")], seq_len=4)
     assert plain.masked is None and "masked" not in plain.to_arrays()
     assert math.isclose(b.padding_fraction, 1 / 8)
+
+
+# --- the PATCH_OPS table ---------------------------------------------------------------------
+
+
+def test_every_patch_op_in_the_table_is_reached_through_apply_patch_ops():
+    from patchloom.image.patchops import PATCH_OPS
+
+    p = patches()
+    coords = grid_coords(8, 8)
+    for name, run in PATCH_OPS.items():
+        op = PatchOp(name=name)
+        x, (c,), std = apply_patch_ops(p, [op], np.random.default_rng(4), extra=[coords])
+        values, order = run(p.astype(np.float32), op, np.random.default_rng(4))
+        np.testing.assert_array_equal(x, values)
+        np.testing.assert_array_equal(c, coords if order is None else coords[order])
+        assert not np.array_equal(x, p.astype(np.float32)), name  # every op changes something
+        assert std == (name == "standardize")
+
+
+def test_an_op_added_to_the_table_is_dispatched(monkeypatch):
+    from patchloom.image.patchops import PATCH_OPS
+
+    monkeypatch.setitem(PATCH_OPS, "invert", lambda x, op, rng: (255.0 - x, None))
+    op = PatchOp(name="noise").model_copy(update={"name": "invert"})
+    x, _, _ = apply_patch_ops(patches(), [op], np.random.default_rng(0))
+    np.testing.assert_array_equal(x, 255.0 - patches().astype(np.float32))
+
+
+def test_unknown_patch_op_names_the_recipe_key_and_after_standardize_only_reorders():
+    bad = PatchOp(name="noise").model_copy(update={"name": "blur"})
+    with pytest.raises(ValueError, match=r"unknown patch op 'blur'.*patch_ops\[\]\.name.*standardize, jitter"):
+        apply_patch_ops(patches(), [bad], np.random.default_rng(0))
+    apply_patch_ops(patches(), [PatchOp(name="standardize"), PatchOp(name="shuffle")], np.random.default_rng(0))
+    with pytest.raises(ValueError, match="'jitter' after standardize"):
+        apply_patch_ops(patches(), [PatchOp(name="standardize"), PatchOp(name="jitter")], np.random.default_rng(0))

@@ -409,3 +409,53 @@ def test_plan_size_rejects_empty_images():
         plan_size(0, 10, sizing())
     with pytest.raises(ValueError):
         plan_size(10, 0, sizing())
+
+
+# --- the SIZING_MODES and RESAMPLE_FILTERS tables --------------------------------------------
+
+
+def _mode_config(name: str):
+    extra = {"sampled": {"range": [16, 64]}} if name == "sampled" else {}
+    return sizing(mode=name, patch_size=8, max_tokens=64, min_tokens=4, **extra)
+
+
+def test_every_sizing_mode_in_the_table_is_reached_through_plan_size():
+    from patchloom.image.sizing import SIZING_MODES
+
+    grids = {}
+    for name, grid_of in SIZING_MODES.items():
+        cfg = _mode_config(name)
+        plan = plan_size(40, 56, cfg, np.random.default_rng(1))  # 5x7 patches natively
+        assert (plan.grid_h, plan.grid_w) == grid_of(40.0, 56.0, plan.budget, cfg), name
+        grids[name] = (plan.grid_h, plan.grid_w)
+    assert grids["native"] == (5, 7) and grids["fixed"] == (8, 8) and grids["budget"][0] * grids["budget"][1] > 35
+
+
+def test_a_sizing_mode_added_to_the_table_is_dispatched(monkeypatch):
+    from patchloom.image.sizing import SIZING_MODES
+
+    monkeypatch.setitem(SIZING_MODES, "one_row", lambda h, w, budget, cfg: (1, budget))
+    cfg = _mode_config("budget").model_copy(update={"mode": "one_row"})
+    plan = plan_size(40, 56, cfg)
+    assert (plan.grid_h, plan.grid_w) == (1, 64)
+
+
+def test_unknown_sizing_mode_names_the_recipe_key_and_the_known_modes():
+    cfg = _mode_config("budget").model_copy(update={"mode": "tiles"})
+    with pytest.raises(ValueError, match=r"unknown sizing mode 'tiles'.*sizing\.mode.*budget, native, fixed"):
+        plan_size(40, 56, cfg)
+
+
+def test_every_resample_filter_in_the_table_is_reached_through_resize_to_plan():
+    from patchloom.image.sizing import RESAMPLE_FILTERS
+
+    img = Image.fromarray(np.random.default_rng(2).integers(0, 256, (57, 83, 3), dtype=np.uint8))
+    plan = plan_size(57, 83, sizing(mode="budget", patch_size=8, max_tokens=30))
+    outs = set()
+    for name, filt in RESAMPLE_FILTERS.items():
+        out = resize_to_plan(img, plan, resample=name)
+        np.testing.assert_array_equal(np.asarray(out), np.asarray(img.resize((plan.width, plan.height), filt)))
+        outs.add(out.tobytes())
+    assert len(outs) == len(RESAMPLE_FILTERS)  # each name really picks its own filter
+    with pytest.raises(ValueError, match=r"unknown resample filter 'cubic'.*sizing\.resample.*bicubic"):
+        resize_to_plan(img, plan, resample="cubic")

@@ -22,7 +22,7 @@ skdata = pytest.importorskip("skimage.data")
 from patchloom import Recipe  # noqa: E402
 from patchloom.bench.quality import psnr  # noqa: E402
 from patchloom.image.decode import decode_path_counts, open_image, reset_decode_path_counts  # noqa: E402
-from patchloom.image.chain import _reduce_hint, plan_for  # noqa: E402
+from patchloom.image.chain import plan_for, reduce_hint  # noqa: E402
 from patchloom.image.sizing import resize_to_plan  # noqa: E402
 
 PHOTOS = ["astronaut", "coffee", "rocket", "immunohistochemistry"]
@@ -41,7 +41,7 @@ def _jpeg(name: str) -> bytes:
 def _pair(data: bytes) -> tuple[np.ndarray, np.ndarray, bool]:
     opened = open_image(data, pixel_limit=10**8)
     plan = plan_for(opened.height, opened.width, RECIPE, seed=0, epoch=0, key="k")
-    image = opened.decode(reduce_to=_reduce_hint(opened, plan))
+    image = opened.decode(reduce_to=reduce_hint(opened, plan))
     full = open_image(data, pixel_limit=10**8).decode()
     ours = np.asarray(resize_to_plan(image, plan, resample=RECIPE.sizing.resample))
     ref = np.asarray(resize_to_plan(full, plan, resample="lanczos"))

@@ -22,17 +22,25 @@ Rules shared by every mode:
   stripe that would leave too few; grid lowers the stride until the lattice keeps enough.
   `decide_drop` passes `DropConfig.min_keep` through.
 - The generator is always passed in; nothing here reads global random state.
+
+`DROP_MODES` (name -> mode function, one uniform signature, see `DropMode`) is the one place a
+mode is registered: `decide_drop` dispatches through it and the recipe's `drop.mode` values are
+its keys.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from .patches import PatchSet
-from ..recipe.schema import DropConfig
+
+if TYPE_CHECKING:  # the recipe reads DROP_MODES, so no run-time import of it here
+    from ..recipe.schema import DropConfig
 
 Rect = tuple[int, int, int, int]  # (top, left, height, width) in patch-grid units
 
@@ -105,10 +113,12 @@ def target_rate(cfg: DropConfig, n_tokens: int, rng: np.random.Generator) -> flo
     rate: that fixed value. beta (a, b): one draw from Beta(a, b) per image (the only setting that
     uses `rng`). max_keep K: max(0, 1 - K/n), so about K tokens stay. rate_curve
     [[tokens, rate], ...]: piecewise-linear in the token count, flat beyond the first and last
-    points. Grid mode with a fixed `stride` k and no rate setting: the nominal 1 - 1/k^2.
-    Nothing given (mode none): 0.
+    points. Grid mode with a fixed `grid.stride` k and no rate setting: the nominal 1 - 1/k^2.
+    Mode none: 0, and nothing is drawn.
     """
     n = int(n_tokens)
+    if cfg.mode == "none":
+        return 0.0
     if cfg.rate is not None:
         return float(cfg.rate)
     if cfg.beta is not None:
@@ -120,8 +130,8 @@ def target_rate(cfg: DropConfig, n_tokens: int, rng: np.random.Generator) -> flo
         xs = [float(t) for t, _ in cfg.rate_curve]
         ys = [float(r) for _, r in cfg.rate_curve]
         return float(np.interp(float(n), xs, ys))
-    if cfg.mode == "grid" and cfg.stride is not None:
-        return 1.0 - 1.0 / cfg.stride**2
+    if cfg.mode == "grid" and cfg.grid.stride is not None:
+        return 1.0 - 1.0 / cfg.grid.stride**2
     return 0.0
 
 
@@ -334,6 +344,71 @@ def drop_content(patches: np.ndarray, rate: float, rng: np.random.Generator, *, 
 
 
 # ---------------------------------------------------------------------------------------------
+# the table of modes: each entry reads its own recipe keys and calls its function above
+
+#: A drop mode: (grid, rate, cfg, rng, patches) -> (keep, blocks). `grid` is (gh, gw); `rate` the
+#: target rate from `target_rate`; `patches()` gives the [gh*gw, D] patches in raster order (only
+#: call it when the mode needs pixels: it checks them); keep is bool [gh*gw] in raster order;
+#: blocks the dropped rectangles when the mode has them, else ().
+Grid = tuple[int, int]
+Pixels = Callable[[], np.ndarray]
+Kept = tuple[np.ndarray, tuple[Rect, ...]]
+DropMode = Callable[[Grid, float, "DropConfig", np.random.Generator, Pixels], Kept]
+
+
+def mode_none(grid: Grid, rate: float, cfg: DropConfig, rng: np.random.Generator, patches: Pixels) -> Kept:
+    """Keep every token."""
+    return np.ones(grid[0] * grid[1], dtype=bool), ()
+
+
+def mode_random(grid: Grid, rate: float, cfg: DropConfig, rng: np.random.Generator, patches: Pixels) -> Kept:
+    """`drop_random` over all the grid's tokens."""
+    return drop_random(grid[0] * grid[1], rate, rng, min_keep=cfg.min_keep), ()
+
+
+def mode_block(grid: Grid, rate: float, cfg: DropConfig, rng: np.random.Generator, patches: Pixels) -> Kept:
+    """`drop_block` with the recipe's block area and aspect."""
+    keep, rects = drop_block(grid, rate, rng, min_area=cfg.block.min_area, aspect=cfg.block.aspect,
+                             min_keep=cfg.min_keep)
+    return keep, tuple(rects)
+
+
+def mode_grid(grid: Grid, rate: float, cfg: DropConfig, rng: np.random.Generator, patches: Pixels) -> Kept:
+    """`drop_grid` with the recipe's fixed stride, if any (else the stride nearest the rate)."""
+    return drop_grid(grid, rate, rng, stride=cfg.grid.stride, min_keep=cfg.min_keep), ()
+
+
+def mode_stripes(grid: Grid, rate: float, cfg: DropConfig, rng: np.random.Generator, patches: Pixels) -> Kept:
+    """`drop_stripes`."""
+    return drop_stripes(grid, rate, rng, min_keep=cfg.min_keep), ()
+
+
+def mode_content(grid: Grid, rate: float, cfg: DropConfig, rng: np.random.Generator, patches: Pixels) -> Kept:
+    """`drop_content` over the patches in raster order, with the recipe's noise."""
+    return drop_content(patches(), rate, rng, noise=cfg.content.noise, min_keep=cfg.min_keep), ()
+
+
+#: name -> mode: the one place a drop mode is registered (recipe `drop.mode` takes these names).
+DROP_MODES: dict[str, DropMode] = {
+    "none": mode_none,
+    "random": mode_random,
+    "block": mode_block,
+    "grid": mode_grid,
+    "stripes": mode_stripes,
+    "content": mode_content,
+}
+
+
+def drop_mode(name: str) -> DropMode:
+    """The DROP_MODES entry for `name`, or an error listing the known modes."""
+    try:
+        return DROP_MODES[name]
+    except (KeyError, TypeError):
+        raise ValueError(f"unknown drop mode {name!r}: set drop.mode in the recipe to one of "
+                         f"{', '.join(DROP_MODES)}") from None
+
+
+# ---------------------------------------------------------------------------------------------
 # decide, then apply
 
 
@@ -362,46 +437,29 @@ def decide_drop(cfg: DropConfig, grid: tuple[int, int], patches: np.ndarray | No
                 rng: np.random.Generator, *, coords: np.ndarray | None = None) -> DropDecision:
     """Every random choice of token dropping for one image, as a DropDecision.
 
-    Mode none keeps everything. Otherwise: the rate from `target_rate`, then the mode's function
-    with cfg's options and `min_keep=cfg.min_keep` (see the module docstring for how each mode
-    honours it). `patches` ([gh*gw, D], raster order) is only read in content mode and may be None
+    The rate from `target_rate` (0 in mode none), then the mode's DROP_MODES entry, which passes
+    `min_keep=cfg.min_keep` on (see the module docstring for how each mode honours it). `patches`
+    ([gh*gw, D], raster order) is only read by modes that need pixels (content) and may be None
     otherwise; pass `coords` when the patches are not in raster order.
     """
     gh, gw = _check_grid(grid)
-    n = gh * gw
-    if cfg.mode == "none":
-        return DropDecision(np.ones(n, dtype=bool), 0.0, (), "none")
-    rate = target_rate(cfg, n, rng)
-    blocks: tuple[Rect, ...] = ()
-    if cfg.mode == "random":
-        keep = drop_random(n, rate, rng, min_keep=cfg.min_keep)
-    elif cfg.mode == "block":
-        keep, rects = drop_block((gh, gw), rate, rng, min_area=cfg.block_min_area, aspect=cfg.block_aspect,
-                                 min_keep=cfg.min_keep)
-        blocks = tuple(rects)
-    elif cfg.mode == "grid":
-        keep = drop_grid((gh, gw), rate, rng, stride=cfg.stride, min_keep=cfg.min_keep)
-    elif cfg.mode == "stripes":
-        keep = drop_stripes((gh, gw), rate, rng, min_keep=cfg.min_keep)
-    elif cfg.mode == "content":
-        keep = drop_content(_raster(patches, coords, (gh, gw)), rate, rng, noise=cfg.content_noise,
-                            min_keep=cfg.min_keep)
-    else:
-        raise ValueError(f"unknown drop mode {cfg.mode!r}")
-    return DropDecision(keep, rate, blocks, cfg.mode)
+    mode = drop_mode(cfg.mode)
+    rate = target_rate(cfg, gh * gw, rng)
+    keep, blocks = mode((gh, gw), rate, cfg, rng, lambda: _raster(patches, coords, (gh, gw)))
+    return DropDecision(keep, rate, tuple(blocks), cfg.mode)
 
 
 def apply_drop(ps: PatchSet, decision: DropDecision, how: str) -> PatchSet:
     """A new PatchSet with the decision applied; no randomness. `ps` is not changed.
 
     Tokens are matched to the decision's raster-order mask through their coords, so a PatchSet
-    whose tokens were reordered works too. how "drop": only kept tokens stay (patches, coords and
+    whose tokens were reordered works too. how "remove": only kept tokens stay (patches, coords and
     any `masked` flags filtered, token order kept). how "mask": every token stays and
     `masked` = not kept (OR-ed with flags already there). Both write meta["drop"] =
     {"mode", "rate", "kept", "total"} (kept: tokens kept or visible; total: tokens before).
     """
-    if how not in ("drop", "mask"):
-        raise ValueError(f"how must be 'drop' or 'mask' (got {how!r})")
+    if how not in ("remove", "mask"):
+        raise ValueError(f"how must be 'remove' or 'mask', as in drop.output (got {how!r})")
     gh, gw = ps.grid
     keep = np.asarray(decision.keep, dtype=bool)
     if keep.shape != (gh * gw,):

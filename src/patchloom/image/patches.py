@@ -23,7 +23,7 @@ class PatchSet:
     key: str = ""
     label: int | None = None
     meta: dict[str, Any] = field(default_factory=dict)
-    masked: np.ndarray | None = None  # bool [N]: True = hidden from the model (drop apply: mask)
+    masked: np.ndarray | None = None  # bool [N]: True = hidden from the model (drop output: mask)
 
     def __post_init__(self) -> None:
         if self.patches.ndim != 2 or self.coords.shape != (self.patches.shape[0], 2):

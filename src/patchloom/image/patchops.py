@@ -3,15 +3,20 @@
 Values are float32 on the 0..255 scale while ops run. `standardize` turns each patch into zero
 mean / unit variance (the usual target for masked-image modelling) and replaces the output
 mean/std normalisation. Every random choice comes from the generator passed in.
+
+`PATCH_OPS` (name -> op function, one uniform signature, see `PatchOpFn`) is the one place an op
+is registered: `apply_patch_ops` dispatches through it and the recipe's op names are its keys.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-from ..recipe.schema import PatchOp
+if TYPE_CHECKING:  # the recipe reads PATCH_OPS, so no run-time import of it here
+    from ..recipe.schema import PatchOp
 
 
 def jitter(x: np.ndarray, rng: np.random.Generator, *, brightness: float, contrast: float) -> np.ndarray:
@@ -35,6 +40,53 @@ def standardize(x: np.ndarray, *, eps: float) -> np.ndarray:
     return (x - mean) / np.sqrt(var + eps)
 
 
+#: A patch op: (x, op, rng) -> (values, order). x is float32 [N, D] (0..255 scale until standardize);
+#: `op` is the recipe entry (its parameters); order is the token permutation the op applied (the
+#: caller moves coords and masked flags with it), or None when the token order is unchanged.
+PatchOpFn = Callable[[np.ndarray, "PatchOp", np.random.Generator], tuple[np.ndarray, "np.ndarray | None"]]
+
+
+def op_standardize(x: np.ndarray, op: PatchOp, rng: np.random.Generator) -> tuple[np.ndarray, None]:
+    """`standardize` with the op's eps."""
+    return standardize(x, eps=op.eps), None
+
+
+def op_jitter(x: np.ndarray, op: PatchOp, rng: np.random.Generator) -> tuple[np.ndarray, None]:
+    """`jitter` with the op's brightness and contrast."""
+    return jitter(x, rng, brightness=op.brightness, contrast=op.contrast), None
+
+
+def op_shuffle(x: np.ndarray, op: PatchOp, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """A uniformly random token order."""
+    perm = rng.permutation(x.shape[0])
+    return x[perm], perm
+
+
+def op_noise(x: np.ndarray, op: PatchOp, rng: np.random.Generator) -> tuple[np.ndarray, None]:
+    """`gaussian_noise` with the op's sigma."""
+    return gaussian_noise(x, rng, sigma=op.sigma), None
+
+
+#: name -> op: the one place a patch op is registered (recipe `patch_ops[].name` takes these names).
+PATCH_OPS: dict[str, PatchOpFn] = {
+    "standardize": op_standardize,
+    "jitter": op_jitter,
+    "shuffle": op_shuffle,
+    "noise": op_noise,
+}
+#: The op whose result replaces the output mean/std normalisation; only reorders may follow it.
+STANDARDIZE = "standardize"
+
+
+def patch_op(name: str) -> PatchOpFn:
+    """The PATCH_OPS entry for `name`, or an error listing the known ops."""
+    try:
+        return PATCH_OPS[name]
+    except (KeyError, TypeError):
+        raise ValueError(f"unknown patch op {name!r}: set patch_ops[].name in the recipe to one of "
+                         f"{', '.join(PATCH_OPS)}") from None
+
+
 def apply_patch_ops(
     patches: np.ndarray,
     ops: Sequence[PatchOp],
@@ -47,26 +99,20 @@ def apply_patch_ops(
     `extra` holds per-token arrays (coords, masked flags) that must follow the tokens when they
     are shuffled. Returns (float32 patches, the extra arrays, whether the result is standardized).
     Each op applies to the whole image with its probability `p`; its parameters vary per patch.
+    After standardize only ops that just reorder the tokens (those that return an order) may run.
     """
     x = patches.astype(np.float32, copy=True)
     extra = list(extra)
     standardized = False
     for op in ops:
+        run = patch_op(op.name)
         if op.p < 1.0 and rng.random() >= op.p:
             continue
-        if standardized and op.name != "shuffle":
+        values, order = run(x, op, rng)
+        if standardized and order is None:
             raise ValueError(f"patch op {op.name!r} after standardize: put standardize last")
-        if op.name == "jitter":
-            x = jitter(x, rng, brightness=op.brightness, contrast=op.contrast)
-        elif op.name == "noise":
-            x = gaussian_noise(x, rng, sigma=op.sigma)
-        elif op.name == "shuffle":
-            perm = rng.permutation(x.shape[0])
-            x = x[perm]
-            extra = [a[perm] for a in extra]
-        elif op.name == "standardize":
-            x = standardize(x, eps=op.eps)
-            standardized = True
-        else:  # the schema only admits the names above
-            raise ValueError(f"unknown patch op {op.name!r}")
+        x = values
+        if order is not None:
+            extra = [a[order] for a in extra]
+        standardized = standardized or op.name == STANDARDIZE
     return x, extra, standardized

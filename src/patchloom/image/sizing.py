@@ -2,23 +2,31 @@
 
 The math is in plain functions (`best_grid`, `plan_size`); `resize_to_plan` applies a plan with
 Pillow. A plan is decided from the image header alone, before any pixel is decoded.
+
+Two tables are the one place their names are registered (the recipe's allowed values are their
+keys): `SIZING_MODES` (sizing.mode -> grid function, see `GridFn`) and `RESAMPLE_FILTERS`
+(sizing.resample -> Pillow filter).
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 from PIL import Image
 
-from ..recipe.schema import CropConfig, SizingConfig
+if TYPE_CHECKING:  # the recipe reads the tables, so no run-time import of it here
+    from ..recipe.schema import CropConfig, SizingConfig
 
 #: Budget mode uses at least this share of max_tokens (the grid may trade a little aspect accuracy
 #: for it). With it, any aspect ratio within 1:4..4:1 gets a grid using >= 85 % of the budget.
 BUDGET_FILL = 0.85
 
-RESAMPLE = {
+#: name -> Pillow filter: the one place a resample filter is registered (recipe sizing.resample).
+RESAMPLE_FILTERS: dict[str, Image.Resampling] = {
     "nearest": Image.Resampling.NEAREST,
     "box": Image.Resampling.BOX,
     "bilinear": Image.Resampling.BILINEAR,
@@ -26,6 +34,15 @@ RESAMPLE = {
     "bicubic": Image.Resampling.BICUBIC,
     "lanczos": Image.Resampling.LANCZOS,
 }
+
+
+def resample_filter(name: str) -> Image.Resampling:
+    """The RESAMPLE_FILTERS entry for `name`, or an error listing the known filters."""
+    try:
+        return RESAMPLE_FILTERS[name]
+    except (KeyError, TypeError):
+        raise ValueError(f"unknown resample filter {name!r}: set sizing.resample in the recipe to one of "
+                         f"{', '.join(RESAMPLE_FILTERS)}") from None
 
 
 @dataclass(slots=True, frozen=True)
@@ -124,25 +141,57 @@ def _budget_window(budget: int, min_tokens: int) -> tuple[int, int]:
     return min(lo, budget), budget
 
 
-def plan_grid(h: float, w: float, cfg: SizingConfig, budget: int | None = None) -> tuple[int, int]:
-    """Grid for an (already cropped) h x w region under the config's mode; budget overrides max_tokens."""
+#: A sizing mode's grid function: (h, w, budget, cfg) -> (grid_h, grid_w) for an (already cropped)
+#: h x w pixel region under a token budget (max_tokens, or this image's draw in sampled mode).
+GridFn = Callable[[float, float, int, "SizingConfig"], tuple[int, int]]
+
+
+def grid_budget(h: float, w: float, budget: int, cfg: SizingConfig) -> tuple[int, int]:
+    """The grid closest to the region's aspect using BUDGET_FILL..100 % of the budget."""
+    return best_grid(h / w, *_budget_window(budget, min(cfg.min_tokens, budget)))
+
+
+def grid_native(h: float, w: float, budget: int, cfg: SizingConfig) -> tuple[int, int]:
+    """The native size rounded to patch multiples; only shrunk when over budget, only grown when
+    under min_tokens."""
     p = cfg.patch_size
-    budget = cfg.max_tokens if budget is None else budget
     min_tokens = min(cfg.min_tokens, budget)
-    aspect = h / w
-    if cfg.mode == "fixed":
-        side = max(1, math.isqrt(budget))
-        return side, side
-    if cfg.mode in ("budget", "sampled"):
-        return best_grid(aspect, *_budget_window(budget, min_tokens))
-    # native: keep the native size rounded to patch multiples; only shrink when over budget,
-    # only grow when under min_tokens.
     gh, gw = max(1, round(h / p)), max(1, round(w / p))
     if gh * gw > budget:
-        return best_grid(aspect, *_budget_window(budget, min_tokens))
+        return best_grid(h / w, *_budget_window(budget, min_tokens))
     if gh * gw < min_tokens:
-        return best_grid(aspect, min_tokens, min(budget, max(min_tokens, math.ceil(min_tokens / BUDGET_FILL))))
+        return best_grid(h / w, min_tokens, min(budget, max(min_tokens, math.ceil(min_tokens / BUDGET_FILL))))
     return gh, gw
+
+
+def grid_fixed(h: float, w: float, budget: int, cfg: SizingConfig) -> tuple[int, int]:
+    """A square isqrt(budget) x isqrt(budget) grid, whatever the aspect."""
+    side = max(1, math.isqrt(budget))
+    return side, side
+
+
+#: name -> grid function: the one place a sizing mode is registered (recipe sizing.mode). Sampled
+#: mode plans like budget mode; its budget is drawn per image by `draw_budget`.
+SIZING_MODES: dict[str, GridFn] = {
+    "budget": grid_budget,
+    "native": grid_native,
+    "fixed": grid_fixed,
+    "sampled": grid_budget,
+}
+
+
+def sizing_mode(name: str) -> GridFn:
+    """The SIZING_MODES entry for `name`, or an error listing the known modes."""
+    try:
+        return SIZING_MODES[name]
+    except (KeyError, TypeError):
+        raise ValueError(f"unknown sizing mode {name!r}: set sizing.mode in the recipe to one of "
+                         f"{', '.join(SIZING_MODES)}") from None
+
+
+def plan_grid(h: float, w: float, cfg: SizingConfig, budget: int | None = None) -> tuple[int, int]:
+    """Grid for an (already cropped) h x w region under the config's mode; budget overrides max_tokens."""
+    return sizing_mode(cfg.mode)(h, w, cfg.max_tokens if budget is None else budget, cfg)
 
 
 def draw_budget(cfg: SizingConfig, rng: np.random.Generator | None) -> int:
@@ -163,17 +212,17 @@ def draw_budget(cfg: SizingConfig, rng: np.random.Generator | None) -> int:
 
 
 def draw_crop(height: int, width: int, cfg: CropConfig, rng: np.random.Generator) -> tuple[int, int, int, int]:
-    """A random crop box (left, top, right, bottom) keeping `scale` of the area, with the image's
-    own aspect times a log-uniform factor from `ratio`; no resize (the size plan follows).
+    """A random crop box (left, top, right, bottom) keeping a share of the area drawn from `area`, with
+    the image's own aspect times a log-uniform factor from `aspect_jitter`; no resize (the size plan follows).
 
     Up to 10 draws are tried for a box that fits; otherwise the whole image is kept.
     """
     if cfg.mode == "none":
         return (0, 0, width, height)
     area = height * width
-    log_lo, log_hi = math.log(cfg.ratio[0]), math.log(cfg.ratio[1])
+    log_lo, log_hi = math.log(cfg.aspect_jitter[0]), math.log(cfg.aspect_jitter[1])
     for _ in range(10):
-        share = rng.uniform(cfg.scale[0], cfg.scale[1])
+        share = rng.uniform(cfg.area[0], cfg.area[1])
         aspect = (width / height) * math.exp(rng.uniform(log_lo, log_hi))  # w / h of the crop
         crop_w = round(math.sqrt(share * area * aspect))
         crop_h = round(math.sqrt(share * area / aspect))
@@ -256,7 +305,7 @@ def resize_to_plan(
     sx, sy = image.width / src_w, image.height / src_h
     left, top, right, bottom = plan.crop
     box = (left * sx, top * sy, right * sx, bottom * sy)
-    filt = RESAMPLE[resample]
+    filt = resample_filter(resample)
     full = box == (0, 0, image.width, image.height)
     if full and (plan.content_w, plan.content_h) == image.size:
         content = image
