@@ -32,7 +32,7 @@ def test_cu_seqlens_counts_pad_tails_as_segments():
     np.testing.assert_array_equal(b.cu_seqlens(), [0, 2, 5, 6, 10, 12])
     assert b.cu_seqlens().dtype == np.int32
     assert b.max_seqlen == 4 and isinstance(b.max_seqlen, int)
-    padded = b.cu_seqlens_padded()
+    padded = b.cu_seqlens_fixed()
     assert padded.shape == (2 * (3 + 1) + 1,)
     np.testing.assert_array_equal(padded, [0, 2, 5, 6, 10, 12, 12, 12, 12])
 

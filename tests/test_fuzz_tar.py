@@ -10,7 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from patchloom.read.shards import Record
+from patchloom.read import Record
 
 _TOOL = Path(__file__).resolve().parents[1] / "tools" / "fuzz_tar.py"
 _spec = importlib.util.spec_from_file_location("fuzz_tar", _TOOL)

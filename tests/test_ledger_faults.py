@@ -20,7 +20,7 @@ from PIL import Image
 
 from patchloom import Pipeline, Recipe, SkipRatioError, SourceError
 from patchloom.cli.main import main
-from patchloom.pipeline import EXAMPLES_PER_REASON, MAX_REASONS, OTHER_REASONS, EmptyEpochError, Ledger, Skip
+from patchloom.ledger import EXAMPLES_PER_REASON, MAX_REASONS, OTHER_REASONS, EmptyEpochError, Ledger, Skip
 from patchloom.summary import RunStats, format_table
 from patchloom.testing import check_resume
 
@@ -28,7 +28,7 @@ from conftest import encode_png, random_image, write_shard
 
 BASE = {"source": {"shuffle_buffer": 4},
         "sizing": {"patch_size": 8, "max_tokens": 16},
-        "packing": {"seq_len": 64, "rows": 2, "buffer": 8}}
+        "packing": {"seq_len": 64, "rows": 2, "lookahead": 8}}
 
 
 def recipe(**source) -> Recipe:
@@ -378,9 +378,9 @@ def test_inspect_warns_once_per_failed_shard(tmp_path, caplog, capsys):
 
 def _loader(r: Recipe, shards: list[str], workers: int):
     pytest.importorskip("torch", reason="the torch extra is not installed")
-    from patchloom.adapters.torch import PackedDataset, PackedLoader
+    from patchloom.adapters.torch import PatchloomDataset, PatchloomLoader
 
-    return PackedLoader(PackedDataset(r, shards), num_workers=workers)
+    return PatchloomLoader(PatchloomDataset(r, shards), num_workers=workers)
 
 
 def test_two_workers_trip_the_guard_in_the_main_process(tmp_path):

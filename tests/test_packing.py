@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from patchloom import PatchSet, Packer, pack
-from patchloom.pack.packer import assign_rows
+from patchloom.packing.assign import ALGORITHMS, MAX_WAIT_BATCHES, assign_rows
 from patchloom.image.patches import grid_coords
 
 
@@ -14,7 +14,7 @@ def ps(n: int, key: str, d: int = 12, label: int | None = 1) -> PatchSet:
     return PatchSet(patches, grid_coords(gh, gw), (gh, gw), key, label)
 
 
-@pytest.mark.parametrize("algorithm", ["first_fit", "best_fit", "in_order"])
+@pytest.mark.parametrize("algorithm", sorted(ALGORITHMS))
 def test_assign_rows_respects_capacity_and_image_limit(algorithm):
     rng = np.random.default_rng(0)
     sizes = rng.integers(1, 60, size=200).tolist()
@@ -162,8 +162,6 @@ def _stream_padding_and_waits(algorithm: str, seed: int = 0) -> tuple[float, int
 
 
 def test_largest_first_pads_less_than_first_fit_and_caps_the_wait():
-    from patchloom.pack.packer import MAX_WAIT_BATCHES
-
     pad_lf, wait_lf = _stream_padding_and_waits("largest_first")
     pad_ff, _ = _stream_padding_and_waits("first_fit")
     assert pad_lf < pad_ff
@@ -181,3 +179,74 @@ def test_packer_restore_keeps_waits():
     assert fresh.waited() == [3]
     with pytest.raises(ValueError, match="waits"):
         fresh.restore([ps(1, "x")], [1, 2])
+
+
+# ----------------------------------------------------------------------------- the algorithm table
+
+
+@pytest.mark.parametrize("algorithm", sorted(ALGORITHMS))
+def test_every_algorithm_opens_rows_as_needed_and_leaves_nothing(algorithm):
+    sizes = np.random.default_rng(1).integers(1, 11, size=50).tolist()
+    rows, left = assign_rows(sizes, seq_len=10, rows=None, max_images_per_row=3, algorithm=algorithm)
+    assert left == [] and sorted(i for r in rows for i in r) == list(range(50))
+    assert all(sum(sizes[i] for i in r) <= 10 and 0 < len(r) <= 3 for r in rows)
+
+
+def test_a_name_added_to_the_table_is_all_a_new_algorithm_needs(monkeypatch):
+    def one_per_row(sizes, *, seq_len, rows, cap, waited=None):
+        n = len(sizes) if rows is None else min(rows, len(sizes))
+        return [[i] for i in range(n)], list(range(n, len(sizes)))
+
+    with pytest.raises(ValueError, match="one_per_row"):
+        Packer(seq_len=10, rows=2, algorithm="one_per_row")
+    monkeypatch.setitem(ALGORITHMS, "one_per_row", one_per_row)
+    packer = Packer(seq_len=10, rows=2, buffer=3, algorithm="one_per_row")
+    out = [b for n, k in [(2, "a"), (2, "b"), (9, "c"), (9, "d")] for b in packer.push(ps(n, k))]
+    assert [b.keys for b in out] == [[["a"], ["b"]]] and [p.key for p in packer.pending] == ["c", "d"]
+
+
+def test_largest_first_puts_images_that_waited_long_before_bigger_ones():
+    sizes = [3, 9, 8]
+    assert assign_rows(sizes, seq_len=10, rows=1, algorithm="largest_first") == ([[1]], [0, 2])
+    waited = [MAX_WAIT_BATCHES, 0, 0]  # item 0 has waited long enough: it goes first
+    assert assign_rows(sizes, seq_len=10, rows=1, algorithm="largest_first", waited=waited) == ([[0]], [1, 2])
+    waited = [MAX_WAIT_BATCHES - 1, 0, 0]
+    assert assign_rows(sizes, seq_len=10, rows=1, algorithm="largest_first", waited=waited) == ([[1]], [0, 2])
+
+
+# ----------------------------------------------------------------------------- Packer state
+
+
+def test_packer_state_holds_references_and_waits_and_resumes_exactly():
+    def item(n: int, key: str, index: int) -> PatchSet:
+        out = ps(n, key)
+        out.meta.update(shard="s.tar", index=index)
+        return out
+
+    items = [item(n, f"k{i}", i) for i, n in enumerate([6, 6, 3, 7, 2, 5, 4, 6, 1, 8])]
+    make = lambda: Packer(seq_len=10, rows=1, buffer=3, algorithm="largest_first")  # noqa: E731
+    whole = make()
+    full = [b.keys for it in items for b in whole.push(it)] + [b.keys for b in whole.flush()]
+    first = make()
+    head = [b.keys for it in items[:5] for b in first.push(it)]
+    state = first.state_dict()
+    assert state == {"pending": [["s.tar", p.meta["index"], w] for p, w in zip(first.pending, first.waited())]}
+    asked = []
+
+    def materialise(refs):
+        asked.append(list(refs))
+        return [items[index] for _, index in refs]
+
+    again = make()
+    again.load_state_dict(state, materialise)
+    assert asked == [[("s.tar", p.meta["index"]) for p in first.pending]]
+    assert again.waited() == first.waited()
+    rest = [b.keys for it in items[5:] for b in again.push(it)] + [b.keys for b in again.flush()]
+    assert head + rest == full
+
+
+def test_packer_state_needs_images_read_from_shards():
+    packer = Packer(seq_len=10, rows=2, buffer=8)
+    packer.push(ps(2, "loose"))
+    with pytest.raises(ValueError, match="loose"):
+        packer.state_dict()

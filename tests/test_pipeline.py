@@ -7,12 +7,12 @@ import pytest
 from PIL import Image
 
 from patchloom import Pipeline, Recipe, SampleError, image_to_patches
-from patchloom.read.shards import SourceError
+from patchloom.read import SourceError
 
 from conftest import encode_png, make_shards, random_image, write_shard
 
 BASE = {"sizing": {"patch_size": 8, "max_tokens": 64, "min_tokens": 4},
-        "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 6, "buffer": 8}}
+        "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 6, "lookahead": 8}}
 
 
 def recipe(**over) -> Recipe:
@@ -240,3 +240,24 @@ def test_shell_shards_need_the_callers_permission(tmp_path, shards):
         Recipe.from_dict({"source": {"allow_shell": True}})
     pipe = Pipeline(recipe(), f"pipe:cat {shards[0]}", allow_shell=True)
     assert sum(b.num_images for b in pipe) == 12
+
+
+def test_observers_see_every_record_and_sample_and_change_nothing(tmp_path):
+    paths = make_shards(tmp_path, 2, 10)
+    r = recipe(source={"shuffle_buffer": 5})
+    records, samples = [], []
+    pipe = Pipeline(r, paths, on_record=records.append, on_sample=samples.append)
+    keys = [k for b in pipe for row in b.keys for k in row]
+    assert len(records) == pipe.ledger.read == 20
+    assert sorted(rec.key for rec in records) == sorted(ps.key for ps in samples) == sorted(keys)
+    assert all(ps.meta["shard"] in paths for ps in samples)
+    assert keys == [k for b in Pipeline(r, paths) for row in b.keys for k in row]
+
+
+def test_max_records_stops_the_reader_and_packs_what_was_read(tmp_path):
+    paths = make_shards(tmp_path, 2, 10)
+    seen = []
+    pipe = Pipeline(recipe(source={"shuffle_buffer": 5}), paths, on_record=seen.append, max_records=7)
+    keys = [k for b in pipe for row in b.keys for k in row]
+    assert len(seen) == pipe.ledger.read == pipe.ledger.emitted == 7
+    assert sorted(keys) == sorted(rec.key for rec in seen)

@@ -10,6 +10,7 @@ import pytest
 
 from patchloom import Pipeline, Recipe
 from patchloom.demo.data import demo_shard_pattern
+from patchloom.pipeline import STATE_VERSION, StateError
 from patchloom.testing import check_resume
 
 from conftest import make_shards
@@ -18,7 +19,7 @@ RECIPES = sorted((Path(__file__).parent.parent / "recipes").glob("*.yaml"))
 SMALL = {"source": {"shuffle_buffer": 7},
          "sizing": {"patch_size": 8, "max_tokens": 64, "min_tokens": 4, "mode": "sampled",
                     "sampled": {"range": [8, 64]}},
-         "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 6, "buffer": 9}}
+         "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 6, "lookahead": 9}}
 
 
 def keys_of(pipe) -> list[str]:
@@ -27,7 +28,7 @@ def keys_of(pipe) -> list[str]:
 
 @pytest.mark.parametrize("path", RECIPES, ids=[p.name for p in RECIPES])
 def test_every_recipe_resumes_exactly(path, demo_dir):
-    recipe = Recipe.from_file(path).replace(packing={"rows": 2, "buffer": 12})
+    recipe = Recipe.from_file(path).replace(packing={"rows": 2, "lookahead": 12})
     report = check_resume(lambda: Pipeline(recipe, demo_shard_pattern(demo_dir)), every=2)
     assert report.batches >= 3
     assert report.positions[0] == 0 and report.positions[-1] == report.batches  # start and end of epoch
@@ -53,9 +54,10 @@ def test_resume_detects_a_wrong_continuation(tmp_path):
         pipe = Pipeline(recipe, paths)
         if len(made) > 1:
             original = pipe.load_state_dict
+            start = pipe.state_dict()  # the state of a pipeline that has not begun
 
             def wrong(state):
-                original({**state, "shuffle_rng": None})  # drop the buffers: start over instead
+                original(start)  # drop the saved position and buffers: start over instead
 
             pipe.load_state_dict = wrong
         return pipe
@@ -128,3 +130,65 @@ def test_equalized_epoch_resumes_exactly_across_a_top_up(tmp_path):
     recipe = Recipe.from_dict({**SMALL, "epoch": {"batches": 6, "equalize": True}})
     report = check_resume(lambda: Pipeline(recipe, paths, rank=1, world_size=2), every=1)
     assert report.batches == 6
+
+
+def test_state_nests_one_section_per_stage(tmp_path):
+    paths = make_shards(tmp_path, 2, 10)
+    pipe = Pipeline(Recipe.from_dict(SMALL), paths)
+    fresh = pipe.state_dict()
+    it = iter(pipe)
+    next(it)
+    state = json.loads(json.dumps(pipe.state_dict()))
+    top = {"version", "fingerprint", "epoch", "rank", "world_size", "worker", "num_workers", "batches",
+           "reader", "shuffle", "packer", "ledger", "shards"}
+    assert set(state) == set(fresh) == top and state["version"] == STATE_VERSION
+    assert set(state["shuffle"]) == {"rng", "held"} and set(state["packer"]) == {"pending"}
+    assert len(state["shuffle"]["held"]) + len(state["packer"]["pending"]) == pipe.in_buffer > 0
+    assert state["ledger"]["read"] == pipe.ledger.read and state["reader"]["count"] == pipe.ledger.read
+    assert all(len(ref) == 3 and ref[0] in paths for ref in state["packer"]["pending"])  # shard, index, waited
+
+
+def _old_or_foreign(state: dict) -> dict[str, object]:
+    v2 = {k: v for k, v in state.items() if k not in ("shuffle", "packer")}
+    v2.update(version=2, shuffle_rng=state["shuffle"]["rng"], shuffle_held=[], pending=[], pending_waited=[])
+    return {
+        "older version": v2,
+        "unknown version": {**state, "version": 99},
+        "not a dict": [state],
+        "section missing": {k: v for k, v in state.items() if k != "packer"},
+        "section not a dict": {**state, "reader": [0, 0, 0]},
+        "section malformed": {**state, "packer": {"pending": [["only-a-url"]]}},
+    }
+
+
+@pytest.mark.parametrize("kind", ["older version", "unknown version", "not a dict", "section missing",
+                                  "section not a dict", "section malformed"])
+def test_an_old_or_foreign_state_is_one_clear_error(tmp_path, kind):
+    paths = make_shards(tmp_path, 2, 10)
+    recipe = Recipe.from_dict(SMALL)
+    pipe = Pipeline(recipe, paths)
+    it = iter(pipe)
+    next(it)
+    bad = _old_or_foreign(json.loads(json.dumps(pipe.state_dict())))[kind]
+    again = Pipeline(recipe, paths)
+    with pytest.raises(StateError, match="start the epoch afresh"):
+        again.load_state_dict(bad)
+        list(again)  # a malformed section is found when the stages load it
+
+
+def test_state_taken_after_set_epoch_starts_the_new_epoch(tmp_path):
+    """A state saved between epochs (after set_epoch, before iterating) resumes the new epoch whole,
+    not the finished reader of the old one."""
+    shards = make_shards(tmp_path, 2, 6)
+    recipe = Recipe.from_dict({"seed": 2, "source": {"shuffle_buffer": 4},
+                               "sizing": {"patch_size": 16, "max_tokens": 16, "min_tokens": 1},
+                               "packing": {"seq_len": 64, "rows": 1, "max_images_per_row": 8}})
+    pipe = Pipeline(recipe, shards=shards)
+    list(pipe)
+    pipe.set_epoch(1)
+    state = json.loads(json.dumps(pipe.state_dict()))
+    fresh = Pipeline(recipe, shards=shards, epoch=1)
+    resumed = Pipeline(recipe, shards=shards)
+    resumed.load_state_dict(state)
+    assert resumed.epoch == 1
+    assert keys_of(resumed) == keys_of(fresh) and len(keys_of(fresh)) == 12

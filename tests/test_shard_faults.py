@@ -21,8 +21,8 @@ import tracemalloc
 import numpy as np
 import pytest
 
-from patchloom.read import shards as sources
-from patchloom.read.shards import (
+from patchloom.read import tar as tar_reader
+from patchloom.read import (
     ReaderCursor,
     ShardError,
     ShardTask,
@@ -95,7 +95,7 @@ def http_root(tmp_path, monkeypatch):
     """(folder, base URL) of an HTTP server on 127.0.0.1 serving tmp_path, stopped after the test."""
     for var in ("http_proxy", "HTTP_PROXY", "https_proxy", "HTTPS_PROXY", "all_proxy", "ALL_PROXY"):
         monkeypatch.delenv(var, raising=False)
-    monkeypatch.setattr(sources, "URL_TIMEOUT_S", 10.0)
+    monkeypatch.setattr(tar_reader, "URL_TIMEOUT_S", 10.0)
     server = http.server.ThreadingHTTPServer(("127.0.0.1", 0),
                                              functools.partial(_QuietHandler, directory=str(tmp_path)))
     thread = threading.Thread(target=server.serve_forever, kwargs={"poll_interval": 0.05}, daemon=True)

@@ -1,12 +1,14 @@
 from __future__ import annotations
 
+import json
 from collections import Counter
 
 import numpy as np
 import pytest
 
 from patchloom.seeding import stream_rng
-from patchloom.read.shards import (
+from patchloom.read import (
+    ReaderCursor,
     Record,
     ShuffleBuffer,
     SourceError,
@@ -130,3 +132,32 @@ def test_split_within_shards_uses_sample_index_modulo():
     assert [(t[0].url, t[0].part, t[0].parts) for t in tasks] == [
         ("a", 0, 3), ("b", 0, 2), ("a", 1, 3), ("b", 1, 2), ("a", 2, 3)]
     assert np.all([len(t) == 1 for t in tasks])
+
+
+def test_shuffle_buffer_state_resumes_the_same_order():
+    recs = [Record(f"k{i}", "u.tar", i, {}) for i in range(40)]
+    whole = [r.key for r in ShuffleBuffer(8, stream_rng(0, 0, "t"))(iter(recs))]
+    buf = ShuffleBuffer(8, stream_rng(0, 0, "t"))
+    it = buf(iter(recs))
+    head = [next(it).key for _ in range(10)]  # 18 records read: 8 held, 10 out
+    state = json.loads(json.dumps(buf.state_dict()))
+    assert sorted(state["held"]) == sorted([r.url, r.index] for r in buf.held) and len(state["held"]) == 8
+    by_ref = {(r.url, r.index): r for r in recs}
+    again = ShuffleBuffer(8, stream_rng(0, 0, "t"))
+    again.load_state_dict(state, lambda refs: [by_ref[ref] for ref in refs])
+    assert head + [r.key for r in again(iter(recs[18:]))] == whole
+    unrestored = ShuffleBuffer(8, stream_rng(0, 0, "t"))  # the same records held, the generator not restored
+    unrestored.held = [by_ref[(url, index)] for url, index in state["held"]]
+    assert head + [r.key for r in unrestored(iter(recs[18:]))] != whole
+
+
+def test_reader_cursor_state_continues_where_it_stopped(tmp_path):
+    paths = make_shards(tmp_path, 2, 5)
+    tasks = split_shards(paths, slot=0, slots=1)
+    whole = [r.key for r in ReaderCursor(tasks)]
+    cur = ReaderCursor(tasks)
+    it = iter(cur)
+    head = [next(it).key for _ in range(7)]
+    again = ReaderCursor(tasks)
+    again.load_state_dict(json.loads(json.dumps(cur.state_dict())))
+    assert head + [r.key for r in again] == whole and len(whole) == 10

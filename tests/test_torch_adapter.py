@@ -12,12 +12,12 @@ torch = pytest.importorskip("torch", reason="the torch extra is not installed")
 from torch.utils.data import DataLoader  # noqa: E402
 
 from patchloom import Recipe  # noqa: E402
-from patchloom.adapters.torch import PackedDataset  # noqa: E402
+from patchloom.adapters.torch import PatchloomDataset  # noqa: E402
 from patchloom.demo.data import DEMO_CORRUPT_KEYS, demo_shard_pattern  # noqa: E402
 
 RECIPE = {"seed": 3, "source": {"shuffle_buffer": 16},
           "sizing": {"patch_size": 16, "max_tokens": 128, "min_tokens": 4, "max_aspect": 8.0},
-          "packing": {"seq_len": 512, "rows": 2, "max_images_per_row": 12, "buffer": 12}}
+          "packing": {"seq_len": 512, "rows": 2, "max_images_per_row": 12, "lookahead": 12}}
 
 
 def per_sample(loader) -> dict[str, np.ndarray]:
@@ -36,7 +36,7 @@ def per_sample(loader) -> dict[str, np.ndarray]:
 
 def test_workers_give_same_samples_and_same_patches(demo_dir):
     recipe = Recipe.from_dict(RECIPE)
-    ds = PackedDataset(recipe, demo_shard_pattern(demo_dir))
+    ds = PatchloomDataset(recipe, demo_shard_pattern(demo_dir))
     single = per_sample(DataLoader(ds, batch_size=None, num_workers=0))
     multi = per_sample(DataLoader(ds, batch_size=None, num_workers=2))
     assert sorted(single) == sorted(multi)
@@ -51,7 +51,7 @@ def test_workers_give_same_samples_and_same_patches(demo_dir):
 
 def test_persistent_workers_see_set_epoch(demo_dir):
     recipe = Recipe.from_dict(RECIPE)
-    ds = PackedDataset(recipe, demo_shard_pattern(demo_dir))
+    ds = PatchloomDataset(recipe, demo_shard_pattern(demo_dir))
     loader = DataLoader(ds, batch_size=None, num_workers=2, persistent_workers=True)
     orders = []
     for epoch in range(2):
@@ -64,7 +64,7 @@ def test_persistent_workers_see_set_epoch(demo_dir):
 
 
 def test_numpy_batches_when_asked(demo_dir):
-    ds = PackedDataset(Recipe.from_dict(RECIPE), demo_shard_pattern(demo_dir), as_tensors=False)
+    ds = PatchloomDataset(Recipe.from_dict(RECIPE), demo_shard_pattern(demo_dir), as_tensors=False)
     first = next(iter(ds))
     assert first.patches.dtype == np.uint8 and first.attention_mask().shape == (2, 512, 512)
 
@@ -74,10 +74,10 @@ def test_augmented_masked_recipe_is_worker_count_independent(demo_dir):
         **RECIPE,
         "crop": {"mode": "random"},
         "augment": [{"name": "HorizontalFlip", "p": 0.5}, {"name": "ColorJitter", "p": 0.8}],
-        "drop": {"mode": "block", "apply": "mask", "rate": 0.4},
+        "drop": {"mode": "block", "output": "mask", "rate": 0.4},
         "patch_ops": [{"name": "jitter"}],
     })
-    ds = PackedDataset(recipe, demo_shard_pattern(demo_dir))
+    ds = PatchloomDataset(recipe, demo_shard_pattern(demo_dir))
 
     def masks(loader):
         out = {}
@@ -105,16 +105,16 @@ def test_loader_state_resumes_exactly(tmp_path, num_workers):
     import sys
     sys.path.insert(0, str(__import__("pathlib").Path(__file__).parent))
     from conftest import make_shards
-    from patchloom.adapters.torch import PackedLoader
+    from patchloom.adapters.torch import PatchloomLoader
 
     paths = make_shards(tmp_path, 3, 14)  # 3 shards over 2 workers: one worker ends early
     recipe = Recipe.from_dict({"source": {"shuffle_buffer": 5},
                                "sizing": {"patch_size": 8, "max_tokens": 64, "mode": "sampled",
                                           "sampled": {"range": [8, 64]}},
-                               "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 6, "buffer": 6}})
+                               "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 6, "lookahead": 6}})
 
     def loader():
-        return PackedLoader(PackedDataset(recipe, paths, epoch=1), num_workers=num_workers)
+        return PatchloomLoader(PatchloomDataset(recipe, paths, epoch=1), num_workers=num_workers)
 
     full = list(loader())
     assert len(full) >= 6
@@ -134,9 +134,27 @@ def test_loader_state_resumes_exactly(tmp_path, num_workers):
 
 
 def test_loader_refuses_a_different_worker_count(tmp_path, demo_dir):
-    from patchloom.adapters.torch import PackedLoader
+    from patchloom.adapters.torch import PatchloomLoader
 
-    ds = PackedDataset(Recipe.from_dict(RECIPE), demo_shard_pattern(demo_dir))
-    state = PackedLoader(ds, num_workers=2).state_dict()
+    ds = PatchloomDataset(Recipe.from_dict(RECIPE), demo_shard_pattern(demo_dir))
+    state = PatchloomLoader(ds, num_workers=2).state_dict()
     with pytest.raises(ValueError, match="same num_workers"):
-        PackedLoader(ds, num_workers=0).load_state_dict(state)
+        PatchloomLoader(ds, num_workers=0).load_state_dict(state)
+
+
+def test_loader_refuses_an_old_or_foreign_state_and_hands_a_good_one_to_the_dataset(tmp_path, demo_dir):
+    from patchloom.adapters.torch import PatchloomLoader
+    from patchloom.pipeline import StateError
+
+    ds = PatchloomDataset(Recipe.from_dict(RECIPE), demo_shard_pattern(demo_dir))
+    state = PatchloomLoader(ds, num_workers=0).state_dict()
+    old_worker = {**state, "slots": {"0": {"version": 2, "shuffle_rng": None}}}
+    for bad in ({**state, "version": 2}, ["not", "a", "state"], {k: v for k, v in state.items() if k != "slots"},
+                old_worker):
+        with pytest.raises(StateError, match="start the epoch afresh"):
+            PatchloomLoader(ds, num_workers=0).load_state_dict(bad)
+    assert ds.resume is None
+    PatchloomLoader(ds, num_workers=0).load_state_dict(state)
+    assert ds.resume == state  # through the dataset's public set_resume, applied once per process
+    ds.set_resume(None)
+    assert ds.resume is None

@@ -6,15 +6,16 @@ The public API is what this module names; everything else may move.
 from __future__ import annotations
 
 from .errors import PatchloomError
-from .pack.batch import PackedBatch
+from .packing.batch import PackedBatch
 from .image.decode import DecodeError
-from .pack.packer import Packer, pack
+from .packing.packer import Packer, pack
 from .image.patches import PatchSet, patchify, unpatchify
-from .pipeline import EmptyEpochError, Ledger, Pipeline, SampleError, SkipRatioError, image_to_patches
+from .ledger import EmptyEpochError, Ledger
+from .pipeline import Pipeline, SampleError, SkipRatioError, image_to_patches
 from .recipe.schema import Recipe, RecipeError
 from .image.sizing import SizePlan, plan_size
-from .read.shards import ShardError, SourceError, expand_shards
-from .store.core import read_packed
+from .read import ShardError, SourceError, expand_shards
+from .store import read_packed
 
 __version__ = "0.1.0"
 

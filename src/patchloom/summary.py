@@ -7,7 +7,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .pack.batch import PackedBatch
+from .packing.batch import PackedBatch
 
 
 @dataclass(slots=True)

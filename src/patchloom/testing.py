@@ -9,7 +9,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .pack.batch import PackedBatch
+from .packing.batch import PackedBatch
 from .pipeline import Pipeline
 
 

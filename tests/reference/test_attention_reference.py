@@ -184,20 +184,20 @@ def test_cu_seqlens_contract(case):
     assert cu.size - 1 == images + tails
     ms = batch.max_seqlen
     assert type(ms) is int and ms == max(lengths)
-    padded = batch.cu_seqlens_padded()
+    padded = batch.cu_seqlens_fixed()
     s = batch.max_images
     assert padded.dtype == np.int32 and padded.shape == (b * (s + 1) + 1,)
     np.testing.assert_array_equal(padded[: cu.size], cu)
     assert (padded[cu.size :] == b * length).all()
 
 
-def test_cu_seqlens_padded_keeps_one_shape_across_batches():
+def test_cu_seqlens_fixed_keeps_one_shape_across_batches():
     """Source: static shapes for compiled steps (common practice); two different batches of the
-    same [B, L, S] get cu_seqlens_padded() of the same length."""
+    same [B, L, S] get cu_seqlens_fixed() of the same length."""
     a = pack(_patchsets([5, 5, 5, 5]), 32, 2, max_images_per_row=4)
     b = pack(_patchsets([30, 2]), 32, 2, max_images_per_row=4)
     assert a.cu_seqlens().size != b.cu_seqlens().size
-    assert a.cu_seqlens_padded().shape == b.cu_seqlens_padded().shape == (2 * 5 + 1,)
+    assert a.cu_seqlens_fixed().shape == b.cu_seqlens_fixed().shape == (2 * 5 + 1,)
 
 
 @pytest.mark.parametrize("case", sorted(CASES))

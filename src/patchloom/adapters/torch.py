@@ -4,8 +4,8 @@ Use it with `DataLoader(ds, batch_size=None, num_workers=N)`: every item is alre
 fixed-shape batch. A sample's tokens do not depend on num_workers (per-sample RNG rule); which
 images share a batch does, since each worker packs its own share.
 
-Ledgers: under a PackedLoader every worker sends its ledger counts (and its newly skipped samples)
-home with each batch, and once more when its share ends, so `PackedLoader.ledger` covers the whole
+Ledgers: under a PatchloomLoader every worker sends its ledger counts (and its newly skipped samples)
+home with each batch, and once more when its share ends, so `PatchloomLoader.ledger` covers the whole
 rank and the loader judges `source.max_skip_ratio` and an empty epoch over all workers together, in
 the main process. Under a plain DataLoader each worker judges the guard over its own share only,
 and cannot tell an empty epoch from a worker that legitimately got nothing.
@@ -25,12 +25,14 @@ except ImportError as exc:  # pragma: no cover - exercised only without the extr
         "(on CPU-only machines install torch first, e.g. pip install torch==2.13.0)"
     ) from exc
 
-from ..pipeline import Ledger, Pipeline, Skip, check_not_empty, check_skip_guard, check_state_version
+from ..ledger import Ledger, Skip, check_not_empty, check_skip_guard
+from ..pipeline import Pipeline, StateError, check_state
+from ..read import describe_identity_change, shard_identity, split_shards
 from ..recipe.schema import Recipe
-from ..read.shards import describe_identity_change, shard_identity, split_shards
 
-#: Version of PackedLoader.state_dict() (2: shard identities kept once, worker states of version 2).
-LOADER_STATE_VERSION = 2
+#: Version of PatchloomLoader.state_dict(). 3: worker states of version 3 (one section per stage).
+#: 2: shard identities kept once, worker states of version 2.
+LOADER_STATE_VERSION = 3
 
 
 def _worker_init() -> None:
@@ -38,7 +40,7 @@ def _worker_init() -> None:
     torch.set_num_threads(1)
 
 
-class PackedDataset(IterableDataset):
+class PatchloomDataset(IterableDataset):
     """Streams PackedBatch dicts of tensors for one rank; DataLoader workers split the rank's share.
 
     `as_tensors=False` yields PackedBatch objects (numpy) instead.
@@ -64,7 +66,9 @@ class PackedDataset(IterableDataset):
         self.as_tensors = as_tensors
         self.allow_shell = allow_shell
         self._resume: dict[str, Any] | None = None
-        self._track_state = False
+        #: Set by PatchloomLoader: each item is a dict carrying the batch and its worker's state home,
+        #: and the main process (not each worker) judges the skip guard and emptiness.
+        self.carry_state = False
         # Validate the shard spec now, in the main process, so errors surface before workers start.
         self.urls = Pipeline(recipe, shards, rank, world_size, epoch, allow_shell=allow_shell).shards
 
@@ -75,6 +79,16 @@ class PackedDataset(IterableDataset):
     @property
     def epoch(self) -> int:
         return int(self._epoch[0])
+
+    def set_resume(self, state: dict[str, Any] | None) -> None:
+        """The PatchloomLoader state the next pass continues from (None: none, start the epoch afresh).
+        Each process's copy of the dataset applies it once: a DataLoader worker to its slot's Pipeline."""
+        self._resume = state
+
+    @property
+    def resume(self) -> dict[str, Any] | None:
+        """The loader state given to set_resume and not yet applied in this process, else None."""
+        return self._resume
 
     def pipeline_for_this_worker(self) -> Pipeline:
         """This DataLoader worker's Pipeline, restored from a loaded state if one applies to it."""
@@ -88,17 +102,17 @@ class PackedDataset(IterableDataset):
         # After a resume, DataLoader worker 0 continues the slot that was due next, so the
         # round-robin order of batches continues exactly where it stopped.
         slot = (wid + (resume["next_slot"] if resume else 0)) % num_workers
-        # Under a PackedLoader the main process judges the skip guard and emptiness over all workers.
+        # Under a PatchloomLoader the main process judges the skip guard and emptiness over all workers.
         pipe = Pipeline(self.recipe, self.shards, self.rank, self.world_size, self.epoch,
                         worker=slot, num_workers=num_workers, allow_shell=self.allow_shell,
-                        guard=not self._track_state)
+                        guard=not self.carry_state)
         if resume is not None and str(slot) in resume["slots"]:
             pipe.load_state_dict({**resume["slots"][str(slot)], "shards": resume["shards"]})
         return pipe
 
     def __iter__(self) -> Iterator[Any]:
         pipe = self.pipeline_for_this_worker()
-        if not self._track_state:
+        if not self.carry_state:
             for batch in pipe:
                 yield batch.to_torch() if self.as_tensors else batch
             return
@@ -117,8 +131,29 @@ class PackedDataset(IterableDataset):
         yield item(None)  # the share ended: its final ledger goes home even if it made no batch
 
 
-class PackedLoader:
-    """A DataLoader over a PackedDataset that can save its position and resume it exactly.
+def check_loader_state(state: Any) -> None:
+    """Refuse what is not a PatchloomLoader.state_dict() of this version (StateError: start afresh)."""
+    if not isinstance(state, dict):
+        raise StateError(f"a loader state is the dict PatchloomLoader.state_dict() returns (got "
+                         f"{type(state).__name__}); pass that, or start the epoch afresh")
+    version = state.get("version")
+    if version != LOADER_STATE_VERSION:
+        old = isinstance(version, int) and 0 < version < LOADER_STATE_VERSION
+        raise StateError(
+            f"loader state version {version!r} " + ("was saved by an older patchloom and cannot be resumed: "
+                                                    "start the epoch afresh" if old else
+                                                    f"is unknown (this patchloom reads {LOADER_STATE_VERSION}): "
+                                                    "start the epoch afresh")
+        )
+    kinds = {"epoch": int, "num_workers": int, "next_slot": int, "shards": list, "slots": dict}
+    missing = [k for k, kind in kinds.items() if not isinstance(state.get(k), kind)]
+    if missing or not all(isinstance(v, dict) for v in state["slots"].values()):
+        raise StateError(f"this loader state lacks {', '.join(map(repr, missing)) or 'worker states'}: it was not "
+                         "written by PatchloomLoader.state_dict(); start the epoch afresh")
+
+
+class PatchloomLoader:
+    """A DataLoader over a PatchloomDataset that can save its position and resume it exactly.
 
     Each batch carries its worker's state to the main process; `state_dict()` gathers the states
     of the batches you have consumed, so a trainer can save it with its checkpoint. Call
@@ -129,14 +164,14 @@ class PackedLoader:
     (EmptyEpochError when no worker got a sample through).
     """
 
-    def __init__(self, dataset: PackedDataset, *, num_workers: int = 0, persistent_workers: bool = False,
+    def __init__(self, dataset: PatchloomDataset, *, num_workers: int = 0, persistent_workers: bool = False,
                  **loader_kwargs: Any) -> None:
         if loader_kwargs.get("batch_size", None) is not None:
-            raise ValueError("items are already packed batches: PackedLoader always uses batch_size=None")
+            raise ValueError("items are already packed batches: PatchloomLoader always uses batch_size=None")
         loader_kwargs.pop("batch_size", None)
         self.dataset = dataset
         self.num_workers = num_workers
-        dataset._track_state = True
+        dataset.carry_state = True
         self._loader = DataLoader(dataset, batch_size=None, num_workers=num_workers,
                                   persistent_workers=persistent_workers and num_workers > 0, **loader_kwargs)
         self._started = False
@@ -151,7 +186,7 @@ class PackedLoader:
         self.dataset.set_epoch(epoch)
 
     def __iter__(self) -> Iterator[Any]:
-        resume = self.dataset._resume
+        resume = self.dataset.resume
         if resume is None or resume["epoch"] != self.dataset.epoch:
             self._slots, self._next_slot = {}, 0
         self._skips = []
@@ -159,7 +194,7 @@ class PackedLoader:
         self._started = True
         self._epoch = self.dataset.epoch
         if self.num_workers > 0:
-            self.dataset._resume = None  # the workers hold their copies now
+            self.dataset.set_resume(None)  # the workers hold their copies now
         n = max(1, self.num_workers)
         limit = self.dataset.recipe.source.max_skip_ratio
         for item in it:
@@ -211,30 +246,24 @@ class PackedLoader:
                 "shards": self.shard_identities(), "slots": dict(self._slots), "next_slot": self._next_slot}
 
     def load_state_dict(self, state: dict[str, Any]) -> None:
-        """Resume from `state_dict()`; refuses another worker count, an older state, or changed shards."""
-        version = state.get("version")
-        if version != LOADER_STATE_VERSION:
-            old = isinstance(version, int) and 0 < version < LOADER_STATE_VERSION
-            raise ValueError(
-                f"loader state version {version!r} " + ("was saved by an older patchloom and cannot be resumed: "
-                                                        "start the epoch afresh" if old else
-                                                        f"is unknown (this patchloom reads {LOADER_STATE_VERSION})")
-            )
+        """Resume from `state_dict()`; refuses (StateError) another worker count, an older or foreign
+        state, or changed shards."""
+        check_loader_state(state)
         for slot_state in state["slots"].values():
-            check_state_version(slot_state.get("version"))
+            check_state(slot_state)
         change = describe_identity_change(state["shards"], self.shard_identities())
         if change is not None:
-            raise ValueError(f"the shards differ from the ones this state was saved over: {change}. Resume over "
+            raise StateError(f"the shards differ from the ones this state was saved over: {change}. Resume over "
                              "the same shard list with the files unchanged, or start the epoch afresh")
         if state["num_workers"] != max(1, self.num_workers):
-            raise ValueError(
+            raise StateError(
                 f"state was saved with {state['num_workers']} workers, this loader has {max(1, self.num_workers)}: "
                 "resume with the same num_workers (each worker's share depends on it)"
             )
         if self._started and self._loader.persistent_workers:
             raise ValueError("load_state_dict must come before the first iteration when workers are persistent")
         self.dataset.set_epoch(int(state["epoch"]))
-        self.dataset._resume = state
+        self.dataset.set_resume(state)
         self._slots = dict(state["slots"])
         self._next_slot = int(state["next_slot"])
         self._epoch = int(state["epoch"])

@@ -22,7 +22,7 @@ class PackedBatch:
     grids: np.ndarray  # [B, S, 2] int32
     labels: np.ndarray  # [B, S] int64
     keys: list[list[str]] = field(default_factory=list)
-    masked: np.ndarray | None = None  # [B, L] bool, True = token hidden (drop apply: mask); else None
+    masked: np.ndarray | None = None  # [B, L] bool, True = token hidden (drop output: mask); else None
 
     @property
     def rows(self) -> int:
@@ -79,7 +79,7 @@ class PackedBatch:
         """Longest segment in cu_seqlens(), as a Python int (kernels take it as a host scalar)."""
         return int(np.diff(self.cu_seqlens()).max())
 
-    def cu_seqlens_padded(self) -> np.ndarray:
+    def cu_seqlens_fixed(self) -> np.ndarray:
         """cu_seqlens() padded to a fixed length B*(S+1)+1 by repeating B*L (empty trailing segments),
         so compiled steps see the same shape every batch."""
         cu = self.cu_seqlens()

@@ -1,98 +1,23 @@
 """Packing: place the tokens of several images into fixed-length rows.
 
-`assign_rows` is the pure bin-packing step (sizes in, row assignment out); `build_batch` writes the
-arrays; `Packer` streams with a bounded look-ahead buffer and carries what does not fit; `pack` is
-the stateless form for a collate_fn.
+`assign_rows` (assign.py) is the pure bin-packing step (sizes in, row assignment out); `build_batch`
+writes the arrays; `Packer` streams with a bounded look-ahead buffer and carries what does not fit;
+`pack` is the stateless form for a collate_fn.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from typing import Any
 
 import numpy as np
 
-from .batch import PackedBatch
 from ..image.patches import PatchSet
+from .assign import assign_rows, check_algorithm
+from .batch import PackedBatch
 
-ALGORITHMS = ("largest_first", "first_fit", "best_fit", "in_order")
-
-#: largest_first places the biggest images first and fills the gaps with small ones; an image that
-#: has waited this many batches in the packer goes before all others, so none waits for ever.
-MAX_WAIT_BATCHES = 8
-
-
-def assign_rows(
-    sizes: Sequence[int],
-    *,
-    seq_len: int,
-    rows: int | None,
-    max_images_per_row: int | None = None,
-    algorithm: str = "first_fit",
-) -> tuple[list[list[int]], list[int]]:
-    """Assign items (by token count) to rows.
-
-    first_fit, best_fit and in_order take the items in arrival order; largest_first takes them from
-    the largest down (first fit decreasing; ties in arrival order). Returns (row -> item indices in
-    placement order, indices left unplaced). With rows=None as many rows as needed are opened and
-    nothing is left over. Items larger than seq_len are an error.
-    """
-    if algorithm not in ALGORITHMS:
-        raise ValueError(f"packing algorithm must be one of {', '.join(ALGORITHMS)} (got {algorithm!r})")
-    if algorithm == "largest_first":
-        order = sorted(range(len(sizes)), key=lambda i: -int(sizes[i]))
-        return _reordered(order, sizes, seq_len=seq_len, rows=rows, max_images_per_row=max_images_per_row)
-    cap = max_images_per_row if max_images_per_row is not None else seq_len
-    sizes = [int(s) for s in sizes]
-    for i, s in enumerate(sizes):
-        if s > seq_len:
-            raise ValueError(
-                f"an image of {s} tokens cannot fit a row of seq_len={seq_len}; "
-                "lower sizing.max_tokens or raise packing.seq_len"
-            )
-    space = np.full(rows if rows is not None else 0, seq_len, dtype=np.int64)  # room left per row
-    count = np.zeros_like(space)  # images per row
-    out: list[list[int]] = [[] for _ in range(len(space))]
-    left: list[int] = []
-    current = 0  # in_order: the row being filled
-    for i, s in enumerate(sizes):
-        if algorithm == "in_order":
-            if left:  # order is kept: once one item waits, everything after it waits too
-                left.append(i)
-                continue
-            while current < len(space) and (space[current] < s or count[current] >= cap):
-                current += 1
-            target = current if current < len(space) else -1
-        else:
-            fits = np.flatnonzero((space >= s) & (count < cap))
-            if fits.size == 0:
-                target = -1
-            elif algorithm == "first_fit":
-                target = int(fits[0])
-            else:  # best_fit: the row with the least room that still fits
-                target = int(fits[np.argmin(space[fits])])
-        if target < 0:
-            if rows is not None:
-                left.append(i)
-                continue
-            space = np.append(space, seq_len)
-            count = np.append(count, 0)
-            out.append([])
-            target = len(space) - 1
-            current = target
-        space[target] -= s
-        count[target] += 1
-        out[target].append(i)
-    return out, left
-
-
-def _reordered(order: Sequence[int], sizes: Sequence[int], *, seq_len: int, rows: int | None,
-               max_images_per_row: int | None) -> tuple[list[list[int]], list[int]]:
-    """First fit over the items taken in `order`; indices mapped back to the caller's."""
-    out, left = assign_rows([sizes[i] for i in order], seq_len=seq_len, rows=rows,
-                            max_images_per_row=max_images_per_row, algorithm="first_fit")
-    return [[order[j] for j in row] for row in out], sorted(order[j] for j in left)
-
+#: A pending image in a Packer's state: the shard URL and sample index it was read from.
+ImageRef = tuple[str, int]
 
 def build_batch(
     items: Sequence[PatchSet],
@@ -193,8 +118,7 @@ class Packer:
         buffer: int = 64,
         algorithm: str = "largest_first",
     ) -> None:
-        if algorithm not in ALGORITHMS:
-            raise ValueError(f"packing algorithm must be one of {', '.join(ALGORITHMS)} (got {algorithm!r})")
+        check_algorithm(algorithm)
         self.seq_len = seq_len
         self.rows = rows
         self.max_images_per_row = max_images_per_row
@@ -216,6 +140,26 @@ class Packer:
             raise ValueError(f"{len(items)} pending items but {len(waited)} waits in the saved state")
         self.pending = list(items)
         self._arrived = [self.emitted - int(w) for w in waited]
+
+    def state_dict(self) -> dict[str, Any]:
+        """The pending images as [shard url, sample index, batches waited] (their meta's "shard" and
+        "index"; no pixels), so a resumed packer makes exactly the same batches."""
+        self._sync()
+        out = []
+        for ps, arrived in zip(self.pending, self._arrived):
+            if "shard" not in ps.meta or "index" not in ps.meta:
+                raise ValueError(f"image {ps.key!r} has no shard and index in its meta: only images read "
+                                 "from shards can be saved in a Packer state")
+            out.append([str(ps.meta["shard"]), int(ps.meta["index"]), self.emitted - arrived])
+        return {"pending": out}
+
+    def load_state_dict(self, state: dict[str, Any],
+                        materialise: Callable[[Sequence[ImageRef]], list[PatchSet]]) -> None:
+        """Continue from `state_dict()`: `materialise` turns the references back into the same
+        PatchSets (the pipeline re-reads and re-processes them; the packer knows no decoding)."""
+        entries = [(str(url), int(index), int(waited)) for url, index, waited in state["pending"]]
+        items = list(materialise([(url, index) for url, index, _ in entries])) if entries else []
+        self.restore(items, [waited for _, _, waited in entries])
 
     def _sync(self) -> None:
         if len(self._arrived) != len(self.pending):  # pending was set directly: count from now
@@ -250,14 +194,9 @@ class Packer:
     def _assemble(self) -> PackedBatch:
         self._sync()
         items, sizes = self.pending, [p.num_tokens for p in self.pending]
-        if self.algorithm == "largest_first":
-            old = [self.emitted - a >= MAX_WAIT_BATCHES for a in self._arrived]
-            order = sorted(range(len(items)), key=lambda i: (not old[i], -sizes[i]))
-            assignment, left = _reordered(order, sizes, seq_len=self.seq_len, rows=self.rows,
-                                          max_images_per_row=self.max_images_per_row)
-        else:
-            assignment, left = assign_rows(sizes, seq_len=self.seq_len, rows=self.rows,
-                                           max_images_per_row=self.max_images_per_row, algorithm=self.algorithm)
+        assignment, left = assign_rows(sizes, seq_len=self.seq_len, rows=self.rows,
+                                       max_images_per_row=self.max_images_per_row, algorithm=self.algorithm,
+                                       waited=[self.emitted - a for a in self._arrived])
         batch = build_batch(items, assignment, seq_len=self.seq_len, max_images_per_row=self.max_images_per_row)
         self.pending = [items[i] for i in left]
         self._arrived = [self._arrived[i] for i in left]

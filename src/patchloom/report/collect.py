@@ -2,10 +2,10 @@
 reservoir of raw records to trace, and a couple of packed batches to draw.
 
 The pass *is* `Pipeline` iteration (reader, shuffle buffer, `process_record`, `Packer`): the report
-only listens, at two points, to the records the reader yields and the PatchSets the per-sample
-chain makes. Which records get traced is a reservoir sample over the reader's records drawn from
-`stream_rng(seed, epoch, "report")`, so the choice does not depend on timing and needs no second
-pass over the shards. The traced records are then run through `process_record` again with a
+only listens, through the Pipeline's observers `on_record` and `on_sample`, to the records the
+reader yields and the PatchSets the per-sample chain makes. Which records get traced is a
+reservoir sample over the reader's records drawn from `stream_rng(seed, epoch, "report")`, so the
+choice does not depend on timing and needs no second pass over the shards. The traced records are then run through `process_record` again with a
 `trace` dict, and their tokens are checked against the ones the pass produced.
 """
 
@@ -14,25 +14,19 @@ from __future__ import annotations
 import hashlib
 import sys
 import time
-from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-from ..pack.batch import PackedBatch
+from ..packing.batch import PackedBatch
 from ..image.patches import PatchSet
 from ..pipeline import Pipeline
 from ..recipe.schema import Recipe
 from ..image.chain import SampleError, process_record
 from ..seeding import stream_rng
-from ..read.shards import Record
+from ..read import Record
 from ..summary import RunStats
-
-#: The two Pipeline methods the watched pipeline listens at. If they move, the report moves with them.
-TAPS = ("_records", "_sample_stream")
-if not all(callable(getattr(Pipeline, name, None)) for name in TAPS):  # pragma: no cover - guards a refactor
-    raise ImportError(f"patchloom.report listens at Pipeline.{' and Pipeline.'.join(TAPS)}, which this patchloom lacks")
 
 
 @dataclass(slots=True, frozen=True)
@@ -124,32 +118,6 @@ class Reservoir:
         return sorted(self.items, key=lambda t: t[0])
 
 
-class WatchedPipeline(Pipeline):
-    """The training Pipeline, unchanged, calling `on_record` for each record the reader yields and
-    `on_sample` for each PatchSet the per-sample chain makes. `max_records` stops the reader after
-    that many records (everything read is still processed, packed and counted)."""
-
-    def __init__(self, recipe: Recipe, shards=None, *, epoch: int = 0, allow_shell: bool = False,
-                 on_record: Callable[[Record], None], on_sample: Callable[[PatchSet], None],
-                 max_records: int | None = None) -> None:
-        super().__init__(recipe, shards=shards, epoch=epoch, allow_shell=allow_shell)
-        self._on_record, self._on_sample, self._max_records = on_record, on_sample, max_records
-
-    def _records(self) -> Iterator[Record]:
-        if self._max_records is not None and self._max_records <= 0:
-            return
-        for count, rec in enumerate(super()._records(), start=1):
-            self._on_record(rec)
-            yield rec
-            if self._max_records is not None and count >= self._max_records:
-                return
-
-    def _sample_stream(self) -> Iterator[PatchSet]:
-        for ps in super()._sample_stream():
-            self._on_sample(ps)
-            yield ps
-
-
 @dataclass(slots=True, eq=False)
 class Traced:
     """One reservoir-chosen record, run through process_record again with a trace."""
@@ -220,8 +188,8 @@ def collect(recipe: Recipe, *, shards=None, epoch: int = 0, samples: int = 12, s
         if ref in chosen:
             stream_digests[ref] = digest(ps)
 
-    pipe = WatchedPipeline(recipe, shards, epoch=epoch, allow_shell=allow_shell, on_record=on_record,
-                           on_sample=on_sample, max_records=max_images)
+    pipe = Pipeline(recipe, shards, epoch=epoch, allow_shell=allow_shell, on_record=on_record,
+                    on_sample=on_sample, max_records=max_images)
     run = RunStats()
     pads: list[np.ndarray] = []
     per_row: list[np.ndarray] = []

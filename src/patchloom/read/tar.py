@@ -1,35 +1,24 @@
-"""Sources: shard lists, the rank/worker split, seeded shuffles, and raw records read from tar shards.
+"""The streaming tar reader: raw records (key, shard URL, index, member bytes) from one tar shard.
 
 Tar shards are read by a small streaming reader of our own (`_TarReader`): it splits member names
 into key and extension as webdataset does, but also notices what a plain tar walk lets pass: a tar
 cut off at a member boundary (no end-of-archive blocks), a `pipe:` command that failed, a member
 name repeated within a sample, and a member whose header declares more bytes than the recipe
-allows (streamed past, never loaded). This module also decides who reads what, in which order,
-and keeps each record's key and shard URL with it.
+allows (streamed past, never loaded). Every failure of a shard is a ShardError naming it.
 """
 
 from __future__ import annotations
 
-import glob
 import os
 import re
 import subprocess
 import tarfile
 import tempfile
-import warnings
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 
-import braceexpand
-
-from ..errors import PatchloomError
-from ..seeding import stream_rng
-
-SHELL_PREFIXES = ("pipe:",)
-
-
-class SourceError(PatchloomError, ValueError):
-    """A shard spec or shard that cannot be read; the message names it and what to change."""
+from .order import ShardTask
+from .specs import SHELL_PREFIXES, SourceError
 
 
 class ShardError(SourceError):
@@ -44,7 +33,8 @@ class ShardError(SourceError):
         return (type(self), (str(self), self.url))
 
 
-def _shard_error(url: str, reason: str) -> ShardError:
+def shard_error(url: str, reason: str) -> ShardError:
+    """A ShardError whose message starts with `shard {url}: `."""
     return ShardError(f"shard {url}: {reason}", url)
 
 
@@ -57,104 +47,6 @@ class Record:
     index: int
     members: dict[str, bytes]
     error: str | None = None  # set when the shard broke off inside this sample: it is skipped, not lost
-
-
-@dataclass(slots=True, frozen=True)
-class ShardTask:
-    """Read `url`, keeping the samples whose index i satisfies i % parts == part."""
-
-    url: str
-    part: int = 0
-    parts: int = 1
-
-
-def expand_shards(spec: str | Sequence[str] | None, *, allow_shell: bool = False) -> list[str]:
-    """Shard spec (path, glob, brace range `part-{000..015}.tar`, URL, or a list of them) -> URLs.
-
-    Shell-command URLs (`pipe:`) run a program: they are refused unless allow_shell is True.
-    """
-    if spec is None:
-        raise SourceError("no shards given: set source.shards in the recipe or pass shards=")
-    items = [spec] if isinstance(spec, str) else list(spec)
-    if not items:
-        raise SourceError("the shard list is empty")
-    out: list[str] = []
-    for item in items:
-        if not isinstance(item, str) or not item.strip():
-            raise SourceError(f"a shard spec must be a non-empty string (got {item!r})")
-        item = item.strip()
-        if item.startswith(SHELL_PREFIXES):
-            if not allow_shell:
-                raise SourceError(
-                    f"shard spec {item!r} runs a shell command; this is refused by default because a "
-                    "recipe is data. Pass allow_shell=True to Pipeline (or --allow-shell on the "
-                    "command line) only for shard lists you wrote yourself"
-                )
-            out.extend(braceexpand.braceexpand(item))
-            continue
-        for expanded in braceexpand.braceexpand(item):
-            if "://" in expanded:
-                out.append(expanded)
-            elif any(ch in expanded for ch in "*?["):
-                matches = sorted(glob.glob(os.path.expanduser(expanded)))
-                if not matches:
-                    raise SourceError(f"shard glob {expanded!r} matches no file")
-                folders = [m for m in matches if os.path.isdir(m)]
-                if folders:
-                    raise SourceError(f"shard glob {expanded!r} matches a folder: " + _folder_message(folders[0]))
-                out.extend(matches)
-            else:
-                path = os.path.expanduser(expanded.removeprefix("file:"))
-                if os.path.isdir(path):
-                    raise SourceError(_folder_message(path))
-                if not os.path.isfile(path):
-                    raise SourceError(_missing_message(path, item))
-                out.append(path)
-    return out
-
-
-def _folder_message(path: str) -> str:
-    tars = glob.glob(os.path.join(glob.escape(path), "*.tar"))
-    pattern = os.path.join(path, "*.tar")
-    return f"shard path {path!r} is a folder; did you mean {pattern!r}? (it holds {len(tars)} .tar files)"
-
-
-def _missing_message(path: str, item: str) -> str:
-    """'does not exist', saying where a relative path was looked for and how to make the demo shards."""
-    text = f"shard {path!r} does not exist (from spec {item!r})"
-    if not os.path.isabs(path):
-        text += f"; relative paths are read from the current working directory {os.getcwd()!r}"
-    if "demo-" in os.path.basename(path):
-        text += "; these look like the demo shards: run `patchloom demo` first (it writes them to ./patchloom-demo)"
-    return text
-
-
-def shard_order(shards: Sequence[str], *, seed: int, epoch: int, shuffle: bool) -> list[str]:
-    """The epoch's shard order, identical on every rank and worker (seeded by seed and epoch only)."""
-    shards = list(shards)
-    if not shuffle:
-        return shards
-    perm = stream_rng(seed, epoch, "shard-order").permutation(len(shards))
-    return [shards[i] for i in perm]
-
-
-def split_shards(shards: Sequence[str], *, slot: int, slots: int) -> list[ShardTask]:
-    """This reader's share of the shards, so that every sample is read once across all slots.
-
-    With at least as many shards as slots, slot s takes shards s, s+slots, ... With fewer shards,
-    several slots share a shard and each keeps every k-th sample of it, so no reader idles and no
-    sample is duplicated (each sharing reader streams past the others' samples without copying them).
-    """
-    if not 0 <= slot < slots:
-        raise ValueError(f"reader slot {slot} out of range for {slots} slots")
-    n = len(shards)
-    if n == 0:
-        return []
-    if n >= slots:
-        return [ShardTask(url) for url in shards[slot::slots]]
-    shard = slot % n
-    parts = len(range(shard, slots, n))
-    return [ShardTask(shards[shard], part=slot // n, parts=parts)]
 
 
 URL_TIMEOUT_S = 60.0  # seconds a stalled HTTP(S) connection may stay silent before the shard fails
@@ -184,10 +76,10 @@ class _PipeStream:
         try:
             status = self.proc.wait(timeout=PIPE_EXIT_TIMEOUT_S)
         except subprocess.TimeoutExpired:
-            raise _shard_error(self.url, f"the command {self.command!r} closed its output but did not "
+            raise shard_error(self.url, f"the command {self.command!r} closed its output but did not "
                                          f"exit within {PIPE_EXIT_TIMEOUT_S:.0f} s") from None
         if status != 0:
-            raise _shard_error(self.url, f"the command {self.command!r} exited with status {status}"
+            raise shard_error(self.url, f"the command {self.command!r} exited with status {status}"
                                          f"{self._stderr_tail()}")
 
     def _stderr_tail(self, limit: int = 300) -> str:
@@ -221,12 +113,12 @@ def open_shard(url: str, *, allow_shell: bool = False):
         try:
             return _PipeStream(url)
         except OSError as exc:
-            raise _shard_error(url, f"cannot start the command ({exc})") from exc
+            raise shard_error(url, f"cannot start the command ({exc})") from exc
     if "://" not in url:
         try:
             return open(url.removeprefix("file:"), "rb")
         except OSError as exc:
-            raise _shard_error(url, f"cannot open ({exc.strerror or exc})") from exc
+            raise shard_error(url, f"cannot open ({exc.strerror or exc})") from exc
     scheme = url.split("://", 1)[0].lower()
     if scheme in ("http", "https"):
         import urllib.error
@@ -235,15 +127,15 @@ def open_shard(url: str, *, allow_shell: bool = False):
         try:
             return urllib.request.urlopen(url, timeout=URL_TIMEOUT_S)  # noqa: S310 (http/https only)
         except urllib.error.HTTPError as exc:
-            raise _shard_error(url, f"the server answered HTTP {exc.code} {exc.reason}") from exc
+            raise shard_error(url, f"the server answered HTTP {exc.code} {exc.reason}") from exc
         except (urllib.error.URLError, OSError, ValueError) as exc:
-            raise _shard_error(url, f"cannot connect ({getattr(exc, 'reason', exc)})") from exc
+            raise shard_error(url, f"cannot connect ({getattr(exc, 'reason', exc)})") from exc
     from webdataset.gopen import gopen  # a function (webdataset >= 0.2); imports torch when installed
 
     try:
         return gopen(url, "rb")
     except Exception as exc:  # noqa: BLE001 (any scheme handler's failure is this shard's failure)
-        raise _shard_error(url, f"cannot open ({exc}); for a store without a built-in reader, give a "
+        raise shard_error(url, f"cannot open ({exc}); for a store without a built-in reader, give a "
                                 f"command as the shard, e.g. 'pipe:aws s3 cp {url} -', with allow_shell") from exc
 
 
@@ -347,7 +239,7 @@ class _TarReader:
             try:
                 chunk = self.raw.read(n - got)
             except Exception as exc:  # noqa: BLE001 (any I/O failure of this shard)
-                raise _shard_error(self.url, f"read failed ({type(exc).__name__}: {exc})") from exc
+                raise shard_error(self.url, f"read failed ({type(exc).__name__}: {exc})") from exc
             if not chunk:
                 break
             parts.append(chunk)
@@ -396,7 +288,7 @@ class _TarReader:
         return done
 
     def _error(self, reason: str) -> ShardError:
-        return _shard_error(self.url, reason)
+        return shard_error(self.url, reason)
 
     def _where(self) -> str:
         if not self.count:
@@ -652,227 +544,3 @@ def _oversize(sample: _Sample, member: _Member, limit: int) -> str:
     return (f"sample {sample.key!r} reaches {total} bytes with member {member.name!r} ({member.size} bytes), "
             f"over source.max_sample_bytes={limit}; {advice}")
 
-
-def fetch_records(refs: Sequence[tuple[str, int]], *, allow_shell: bool = False,
-                  max_sample_bytes: int | None = None) -> list[Record]:
-    """The records at (shard url, index) positions, in the order given (to rebuild buffers on resume)."""
-    by_url: dict[str, set[int]] = {}
-    for url, index in refs:
-        by_url.setdefault(url, set()).add(int(index))
-    found: dict[tuple[str, int], Record] = {}
-    failures: dict[str, ShardError] = {}
-    for url, indices in by_url.items():
-        try:
-            for rec in read_shard(ShardTask(url), allow_shell=allow_shell, wanted=indices,
-                                  max_sample_bytes=max_sample_bytes):
-                found[(url, rec.index)] = rec
-        except ShardError as exc:  # records read before the failure still count; missing ones raise below
-            failures[url] = exc
-    missing = [ref for ref in refs if (ref[0], int(ref[1])) not in found]
-    if missing:
-        cause = f" ({failures[missing[0][0]]})" if missing[0][0] in failures else ""
-        raise SourceError(
-            f"cannot resume: {len(missing)} buffered samples are no longer in their shards "
-            f"(first: shard {missing[0][0]}, sample #{missing[0][1]}){cause}; did the shards change?"
-        )
-    return [found[(url, int(index))] for url, index in refs]
-
-
-def read_tasks(
-    tasks: Sequence[ShardTask],
-    *,
-    allow_shell: bool = False,
-    on_shard_error: Callable[[str, Exception], None] | None = None,
-    max_sample_bytes: int | None = None,
-) -> Iterator[Record]:
-    """Records of several shard tasks in order. A shard that fails mid-read raises ShardError, or is
-    reported to on_shard_error (the rest of that shard is lost and the callback records it)."""
-    for task in tasks:
-        try:
-            yield from read_shard(task, allow_shell=allow_shell, max_sample_bytes=max_sample_bytes)
-        except ShardError as exc:
-            if on_shard_error is None:
-                raise
-            on_shard_error(task.url, exc)
-        except SourceError:
-            raise
-        except Exception as exc:  # noqa: BLE001 (an unforeseen failure of this shard)
-            if on_shard_error is None:
-                raise _shard_error(task.url, f"cannot read: {exc}") from exc
-            on_shard_error(task.url, exc)
-
-
-class ShuffleBuffer:
-    """Seeded shuffle of raw records (bytes, before decode) through a buffer of `size` records.
-
-    `held` is what the buffer holds right now, so the ledger can account for it.
-    """
-
-    def __init__(self, size: int, rng) -> None:
-        self.size = size
-        self.rng = rng
-        self.held: list[Record] = []
-
-    def __call__(self, records: Iterator[Record]) -> Iterator[Record]:
-        if self.size <= 1:
-            yield from records
-            return
-        buf = self.held
-        for rec in records:
-            if len(buf) < self.size:
-                buf.append(rec)
-                continue
-            i = int(self.rng.integers(len(buf)))
-            out, buf[i] = buf[i], rec
-            yield out
-        while buf:
-            i = int(self.rng.integers(len(buf)))
-            buf[i], buf[-1] = buf[-1], buf[i]
-            yield buf.pop()
-
-
-def reader_tasks(
-    shards: Sequence[str],
-    *,
-    seed: int,
-    epoch: int,
-    rank: int = 0,
-    world_size: int = 1,
-    worker: int = 0,
-    num_workers: int = 1,
-    shuffle_shards: bool = True,
-) -> list[ShardTask]:
-    """The shard tasks one reader (rank, worker) gets in one epoch."""
-    if not 0 <= rank < world_size:
-        raise ValueError(f"rank must be in 0..{world_size - 1} (got {rank})")
-    if not 0 <= worker < num_workers:
-        raise ValueError(f"worker must be in 0..{num_workers - 1} (got {worker})")
-    slots = world_size * num_workers
-    if len(shards) < slots and worker == 0 and rank == 0:
-        warnings.warn(
-            f"{len(shards)} shards for {slots} readers (ranks x workers): readers share shards, each "
-            "keeping every k-th sample and streaming past the rest; more, smaller shards read faster",
-            stacklevel=2,
-        )
-    order = shard_order(shards, seed=seed, epoch=epoch, shuffle=shuffle_shards)
-    return split_shards(order, slot=rank * num_workers + worker, slots=slots)
-
-
-class ReaderCursor:
-    """One reader's walk over its shard tasks, with a JSON-able position for exact resume.
-
-    The position is (pass, task, index): the next sample index to read in task `task` of pass
-    `pass`. With `cycle`, the share is read again (pass 1, 2, ...) when it runs out, for
-    equalised epochs. `limit` caps the records it yields in total (an epoch defined in samples).
-    """
-
-    def __init__(
-        self,
-        tasks: Sequence[ShardTask],
-        *,
-        allow_shell: bool = False,
-        on_shard_error: Callable[[str, Exception], None] | None = None,
-        cycle: bool = False,
-        limit: int | None = None,
-        max_sample_bytes: int | None = None,
-    ) -> None:
-        self.tasks = list(tasks)
-        self.allow_shell = allow_shell
-        self.on_shard_error = on_shard_error
-        self.max_sample_bytes = max_sample_bytes
-        self.cycle = cycle
-        self.limit = limit
-        self.pass_ = 0
-        self.task = 0
-        self.index = 0
-        self.count = 0  # records yielded so far (across passes)
-        self.done = False
-
-    def state_dict(self) -> dict:
-        return {"pass": self.pass_, "task": self.task, "index": self.index, "count": self.count, "done": self.done}
-
-    def load_state_dict(self, state: dict) -> None:
-        self.pass_, self.task, self.index = int(state["pass"]), int(state["task"]), int(state["index"])
-        self.count, self.done = int(state["count"]), bool(state["done"])
-
-    def __iter__(self) -> Iterator[Record]:
-        if self.limit is not None and self.count >= self.limit:
-            self.done = True
-        while not self.done:
-            produced = 0
-            fresh_pass = self.task == 0 and self.index == 0
-            while self.task < len(self.tasks):
-                task = self.tasks[self.task]
-                try:
-                    for rec in read_shard(task, allow_shell=self.allow_shell, start=self.index,
-                                          max_sample_bytes=self.max_sample_bytes):
-                        self.index = rec.index + 1
-                        self.count += 1
-                        produced += 1
-                        if self.limit is not None and self.count >= self.limit:
-                            self.done = True
-                        yield rec
-                        if self.done:
-                            return
-                except ShardError as exc:  # this shard failed: raise, or report it and go on
-                    if self.on_shard_error is None:
-                        raise
-                    self.on_shard_error(task.url, exc)
-                except SourceError:
-                    raise
-                except Exception as exc:  # noqa: BLE001 (an unforeseen failure of this shard)
-                    if self.on_shard_error is None:
-                        raise _shard_error(task.url, f"cannot read: {exc}") from exc
-                    self.on_shard_error(task.url, exc)
-                self.task, self.index = self.task + 1, 0
-            if self.limit is not None and self.count >= self.limit:
-                self.done = True
-            elif not self.cycle or (fresh_pass and produced == 0):
-                self.done = True  # one pass, or a share with nothing in it: cannot top up
-            else:
-                self.pass_, self.task, self.index = self.pass_ + 1, 0, 0
-
-
-# --------------------------------------------------------------------------- resume identity
-
-
-def shard_identity(url: str) -> dict:
-    """What a saved state remembers of a shard to notice it changed: its URL, and for a local file
-    its size and modification time (None where unknown: URLs, `pipe:` commands, missing files)."""
-    out: dict = {"url": url, "size": None, "mtime": None}
-    if "://" in url or url.startswith(SHELL_PREFIXES):
-        return out
-    try:
-        st = os.stat(os.path.expanduser(url.removeprefix("file:")))
-    except OSError:
-        return out
-    out.update(size=int(st.st_size), mtime=float(st.st_mtime))
-    return out
-
-
-def describe_identity_change(saved: Sequence[dict], now: Sequence[dict]) -> str | None:
-    """One line naming the first difference between two lists of `shard_identity` (reordered,
-    swapped, rewritten or gone), or None when they match."""
-    then_urls = [str(s.get("url")) for s in saved]
-    now_urls = [str(s.get("url")) for s in now]
-    if then_urls != now_urls:
-        i = next((k for k, (a, b) in enumerate(zip(then_urls, now_urls)) if a != b), min(len(then_urls), len(now_urls)))
-        then_at = then_urls[i] if i < len(then_urls) else "(none)"
-        now_at = now_urls[i] if i < len(now_urls) else "(none)"
-        if sorted(then_urls) == sorted(now_urls):
-            kind = "was reordered"
-        elif len(then_urls) != len(now_urls):
-            kind = f"changed from {len(then_urls)} to {len(now_urls)} shards"
-        else:
-            kind = "has a different shard"
-        return (f"the shard list {kind} since the state was saved (position {i}: {then_at} then, "
-                f"{now_at} now)")
-    for a, b in zip(saved, now):
-        for name in ("size", "mtime"):
-            old, new = a.get(name), b.get(name)
-            if old == new:
-                continue
-            if new is None:
-                return f"shard {a.get('url')} can no longer be read ({name} {old} when the state was saved)"
-            return f"shard {a.get('url')} was rewritten since the state was saved ({name} {old} -> {new})"
-    return None

@@ -1,0 +1,159 @@
+"""Row assignment: which images go into which row, by token count alone (sizes in, rows out).
+
+`ALGORITHMS` maps each packing algorithm's name to its function; it is the one place a packing
+algorithm is registered (the recipe schema reads `packing.algorithm`'s allowed values from it).
+Every function takes the sizes (already checked to fit a row) and returns (row -> item indices in
+placement order, indices left unplaced); with rows=None it opens rows as needed and leaves nothing.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+#: largest_first places the biggest images first and fills the gaps with small ones; an image that
+#: has waited this many batches in the packer goes before all others, so none waits for ever.
+MAX_WAIT_BATCHES = 8
+
+Assignment = tuple[list[list[int]], list[int]]
+
+
+@dataclass(slots=True)
+class _Rows:
+    """Rows being filled: room left and images in each. A fixed number of rows, or (rows=None)
+    as many as needed: a new one opens when no row takes an item."""
+
+    seq_len: int
+    cap: int  # images a row may hold
+    fixed: bool
+    space: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    count: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
+    out: list[list[int]] = field(default_factory=list)
+
+    @classmethod
+    def start(cls, rows: int | None, seq_len: int, cap: int) -> _Rows:
+        n = rows if rows is not None else 0
+        return cls(seq_len, cap, rows is not None, np.full(n, seq_len, dtype=np.int64),
+                   np.zeros(n, dtype=np.int64), [[] for _ in range(n)])
+
+    def fitting(self, size: int) -> np.ndarray:
+        """Indices of the rows with room for `size` tokens and one more image."""
+        return np.flatnonzero((self.space >= size) & (self.count < self.cap))
+
+    def takes(self, row: int, size: int) -> bool:
+        return bool(self.space[row] >= size and self.count[row] < self.cap)
+
+    def place(self, item: int, size: int, row: int) -> int:
+        """Put `item` in `row` (-1: no row takes it, so open one unless the rows are fixed).
+        Returns the row it went to, or -1 when it has to wait for the next batch."""
+        if row < 0:
+            if self.fixed:
+                return -1
+            self.space = np.append(self.space, self.seq_len)
+            self.count = np.append(self.count, 0)
+            self.out.append([])
+            row = len(self.space) - 1
+        self.space[row] -= size
+        self.count[row] += 1
+        self.out[row].append(item)
+        return row
+
+
+def first_fit(sizes: Sequence[int], *, seq_len: int, rows: int | None, cap: int,
+              waited: Sequence[int] | None = None) -> Assignment:
+    """Items in arrival order, each into the first row with room."""
+    table, left = _Rows.start(rows, seq_len, cap), []
+    for i, s in enumerate(sizes):
+        fits = table.fitting(s)
+        if table.place(i, s, int(fits[0]) if fits.size else -1) < 0:
+            left.append(i)
+    return table.out, left
+
+
+def best_fit(sizes: Sequence[int], *, seq_len: int, rows: int | None, cap: int,
+             waited: Sequence[int] | None = None) -> Assignment:
+    """Items in arrival order, each into the row with the least room that still takes it."""
+    table, left = _Rows.start(rows, seq_len, cap), []
+    for i, s in enumerate(sizes):
+        fits = table.fitting(s)
+        row = int(fits[np.argmin(table.space[fits])]) if fits.size else -1
+        if table.place(i, s, row) < 0:
+            left.append(i)
+    return table.out, left
+
+
+def in_order(sizes: Sequence[int], *, seq_len: int, rows: int | None, cap: int,
+             waited: Sequence[int] | None = None) -> Assignment:
+    """Items in arrival order, filling one row after the other; once one item waits, all after it
+    wait too (the order of images is kept exactly)."""
+    table, left = _Rows.start(rows, seq_len, cap), []
+    current = 0  # the row being filled
+    for i, s in enumerate(sizes):
+        if left:
+            left.append(i)
+            continue
+        while current < len(table.space) and not table.takes(current, s):
+            current += 1
+        row = table.place(i, s, current if current < len(table.space) else -1)
+        if row < 0:
+            left.append(i)
+        else:
+            current = row
+    return table.out, left
+
+
+def largest_first(sizes: Sequence[int], *, seq_len: int, rows: int | None, cap: int,
+                  waited: Sequence[int] | None = None) -> Assignment:
+    """First fit over the items from the largest down (first fit decreasing; ties in arrival
+    order). Items that have `waited` MAX_WAIT_BATCHES batches or more go before all others."""
+    old = [w >= MAX_WAIT_BATCHES for w in waited] if waited is not None else [False] * len(sizes)
+    order = sorted(range(len(sizes)), key=lambda i: (not old[i], -sizes[i]))
+    out, left = first_fit([sizes[i] for i in order], seq_len=seq_len, rows=rows, cap=cap)
+    return [[order[j] for j in row] for row in out], sorted(order[j] for j in left)
+
+
+#: Packing algorithm name -> function(sizes, *, seq_len, rows, cap, waited) -> (rows, left).
+ALGORITHMS: dict[str, Callable[..., Assignment]] = {
+    "largest_first": largest_first,
+    "first_fit": first_fit,
+    "best_fit": best_fit,
+    "in_order": in_order,
+}
+
+
+def check_algorithm(algorithm: str) -> None:
+    """Refuse a name that is not in ALGORITHMS, listing the ones that are."""
+    if algorithm not in ALGORITHMS:
+        raise ValueError(f"packing algorithm must be one of {', '.join(ALGORITHMS)} (got {algorithm!r})")
+
+
+def assign_rows(
+    sizes: Sequence[int],
+    *,
+    seq_len: int,
+    rows: int | None,
+    max_images_per_row: int | None = None,
+    algorithm: str = "first_fit",
+    waited: Sequence[int] | None = None,
+) -> Assignment:
+    """Assign items (by token count) to rows with the named algorithm (see ALGORITHMS).
+
+    Returns (row -> item indices in placement order, indices left unplaced). With rows=None as
+    many rows as needed are opened and nothing is left over. `waited` (batches each item has
+    waited in a streaming packer) lets largest_first put long-waiting items first. Items larger
+    than seq_len are an error.
+    """
+    check_algorithm(algorithm)
+    sizes = [int(s) for s in sizes]
+    for s in sizes:
+        if s > seq_len:
+            raise ValueError(
+                f"an image of {s} tokens cannot fit a row of seq_len={seq_len}; "
+                "lower sizing.max_tokens or raise packing.seq_len"
+            )
+    if waited is not None and len(waited) != len(sizes):
+        raise ValueError(f"{len(sizes)} sizes but {len(waited)} waits")
+    cap = max_images_per_row if max_images_per_row is not None else seq_len
+    return ALGORITHMS[algorithm](sizes, seq_len=seq_len, rows=rows, cap=cap, waited=waited)
