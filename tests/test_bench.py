@@ -12,16 +12,17 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from patchloom.bench.corpus import ensure_demo_shards, load_corpus
 from patchloom.bench.pipeline import (
     SquareBaseline,
     baseline_batch_images,
     baseline_side,
-    ensure_demo_shards,
     format_bench,
     run_bench,
     square_patches,
 )
-from patchloom.cli.main import DEMO_RECIPE
+from patchloom.cli.main import main
+from patchloom.demo import DEMO_RECIPE
 from patchloom.demo.data import DEMO_CORRUPT_KEYS, MIN_SAMPLES, make_demo_shards
 from patchloom.recipe.schema import Recipe
 
@@ -104,23 +105,59 @@ def test_ensure_demo_shards_only_for_demo_folder(tmp_path: Path) -> None:
 
 
 def test_bench_command(shard: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
-    from patchloom.cli.main import main
-
     out = tmp_path / "bench.json"
-    rc = main(["bench", "demo", "--shards", shard, "--repeats", "1", "--max-images", "4", "--json", str(out),
-               "--no-progress"])
+    rc = main(["bench", "pipeline", "--corpus", "demo", "--shards", shard, "--repeats", "1", "--max-images", "4",
+               "--json", str(out), "--no-progress"])
     assert rc == 0
     assert "pipeline / baseline:" in capsys.readouterr().out
     assert json.loads(out.read_text())["repeats"] == 1
-    assert main(["bench", "no-such-recipe.yaml", "--no-progress"]) == 2
+    assert main(["bench", "pipeline", "--corpus", "no-such-recipe.yaml", "--no-progress"]) == 2
+    assert "no-such-recipe.yaml" in capsys.readouterr().err
+
+
+def test_bench_takes_one_benchmark_and_its_own_options(capsys: pytest.CaptureFixture[str]) -> None:
+    for argv in (["bench"],  # no benchmark named
+                 ["bench", "pipeline", "--packing"],  # the old mode flags are gone: never a silent other mode
+                 ["bench", "packing", "--shards", "x.tar"],  # packing reads no shard
+                 ["bench", "drops", "--points", "3"],  # resume's option
+                 ["bench", "workers", "--epochs", "1"],  # one cold epoch and no warm one
+                 ["bench", "pipeline", "--repeats", "0"]):
+        with pytest.raises(SystemExit) as exit_:
+            main(argv)
+        assert exit_.value.code == 2, argv
+    assert "--points" in capsys.readouterr().err
+
+
+def test_packing_and_soak_subcommands(shard: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    out = tmp_path / "packing.json"
+    assert main(["bench", "packing", "--corpus", "demo", "--images", "200", "--json", str(out), "--no-progress"]) == 0
+    assert "lookahead" in capsys.readouterr().out
+    assert json.loads(out.read_text())["images"] == 200
+    assert main(["bench", "soak", "--corpus", "demo", "--shards", shard, "--images", "20", "--samples", "2",
+                 "--json", str(out), "--no-progress"]) == 0
+    assert "memory soak" in capsys.readouterr().out
+    assert json.loads(out.read_text())["images"] >= 20
+
+
+def test_corpus_names_and_recipe_files(shard: str, tmp_path: Path) -> None:
+    demo = load_corpus("demo", data=tmp_path / "d", make=False)
+    assert demo.recipe.fingerprint() == Recipe.from_dict(DEMO_RECIPE).fingerprint()
+    assert demo.shards == str(tmp_path / "d" / "demo-{000000..000003}.tar") and demo.made_in is None
+    path = tmp_path / "r.yaml"
+    path.write_text(Recipe.from_dict({**DEMO_RECIPE, "seed": 5}).to_yaml())
+    own = load_corpus(str(path), shards=shard)
+    assert own.recipe.seed == 5 and own.shards == shard and own.made_in is None
+    photos = load_corpus("photos", data=tmp_path / "p", make=False)
+    assert photos.recipe.sizing.max_tokens == 196 and "photos-" in photos.shards
+    assert not (tmp_path / "p").exists()  # make=False writes nothing
 
 
 def test_tools_script_is_the_command(shard: str) -> None:
     import subprocess
     import sys
 
-    out = subprocess.run([sys.executable, str(ROOT / "tools" / "bench.py"), "demo", "--shards", shard,
-                          "--repeats", "1", "--max-images", "2", "--no-progress"],
+    out = subprocess.run([sys.executable, str(ROOT / "tools" / "bench.py"), "pipeline", "--corpus", "demo",
+                          "--shards", shard, "--repeats", "1", "--max-images", "2", "--no-progress"],
                          capture_output=True, text=True, timeout=120)
     assert out.returncode == 0, out.stderr
     assert "pipeline / baseline:" in out.stdout
@@ -128,9 +165,8 @@ def test_tools_script_is_the_command(shard: str) -> None:
 
 def test_drop_mode_bench_reports_every_mode(shard: str, capsys: pytest.CaptureFixture[str]) -> None:
     from patchloom.bench.drops import DROP_MODES
-    from patchloom.cli.main import main
 
-    assert main(["bench", "demo", "--shards", shard, "--drop-modes", "--repeats", "1",
+    assert main(["bench", "drops", "--corpus", "demo", "--shards", shard, "--repeats", "1",
                  "--max-images", "8", "--no-progress"]) == 0
     out = capsys.readouterr().out
     for name in DROP_MODES:
@@ -145,13 +181,12 @@ def test_drop_mode_bench_reports_every_mode(shard: str, capsys: pytest.CaptureFi
 
 def test_resume_bench_measures_save_and_load(shard: str, capsys: pytest.CaptureFixture[str]) -> None:
     from patchloom.bench.resume import bench_resume
-    from patchloom.cli.main import main
 
-    recipe = Recipe.from_dict(DEMO_RECIPE).replace(packing={"rows": 1, "buffer": 4})
+    recipe = Recipe.from_dict(DEMO_RECIPE).replace(packing={"rows": 1, "lookahead": 4})
     res = bench_resume(recipe, shards=shard, points=3)
     assert res["batches"] >= 2 and res["state_bytes_max"] > 0 and res["resume_first_batch_s"] > 0
     assert res["positions"][0] >= 1 and res["positions"][-1] <= res["batches"]
     path = Path(shard).parent / "one-row.yaml"
     path.write_text(recipe.to_yaml())
-    assert main(["bench", str(path), "--shards", shard, "--resume", "--no-progress"]) == 0
+    assert main(["bench", "resume", "--corpus", str(path), "--shards", shard, "--points", "2", "--no-progress"]) == 0
     assert "state_dict()" in capsys.readouterr().out

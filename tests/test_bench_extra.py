@@ -19,7 +19,7 @@ from patchloom.bench.pipeline import STAGES, run_bench, stage_profile
 from patchloom.bench.quality import decode_quality, format_quality, psnr
 from patchloom.bench.photos import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern, photo_size
 from patchloom.recipe.schema import Recipe
-from patchloom.read.shards import expand_shards
+from patchloom.read import expand_shards
 
 
 @pytest.fixture(scope="module")

@@ -25,6 +25,27 @@ def test_recipe_check_and_show(capsys):
     assert "pixel_limit:" in shown and "aspect_rule: pad" in shown
 
 
+def test_any_error_of_ours_is_one_line_and_exit_2(monkeypatch, capsys):
+    import patchloom.cli.run as run_cmd
+    from patchloom.store import StoreError
+
+    def broken(args):
+        raise StoreError("packed/manifest.json: manifest field workers must be an integer")
+
+    monkeypatch.setattr(run_cmd, "cmd_run", broken)
+    assert main(["run", "any.yaml", "--no-progress"]) == 2
+    err = capsys.readouterr().err
+    assert err == "patchloom: error: packed/manifest.json: manifest field workers must be an integer\n"
+
+
+def test_bench_help_lists_every_benchmark():
+    out = subprocess.run([sys.executable, "-m", "patchloom.cli.main", "bench", "--help"], capture_output=True,
+                         text=True)
+    assert out.returncode == 0
+    for name in ("pipeline", "drops", "packing", "resume", "workers", "soak"):
+        assert name in out.stdout
+
+
 def test_bad_recipe_exits_nonzero_with_message(tmp_path, capsys):
     bad = tmp_path / "bad.yaml"
     bad.write_text("sizing: {max_tokens: 5000}\n")

@@ -22,16 +22,8 @@ ray = pytest.importorskip("ray")
 import test_store as store_tests
 
 from patchloom import Recipe
-from patchloom.store import engine_ray
-from patchloom.store import core as store
-from patchloom.store.core import (
-    GROUPS,
-    MANIFEST,
-    StoreError,
-    add_store_commands,
-    pack_to_dir,
-    verify_dir,
-)
+from patchloom.store import GROUPS, MANIFEST, StoreError, engine_ray, pack_to_dir, verify_dir, writer
+from patchloom.store.command import add_store_commands
 
 # The store tests' fixtures: inputs (two demo shards), recipe, and their local 2-worker pack, the reference.
 inputs, recipe, local2 = store_tests.inputs, store_tests.recipe, store_tests.packed2
@@ -75,14 +67,14 @@ def _inodes(out: Path, group: int) -> dict[str, tuple[int, int]]:
 
 def _crash_before_manifest(monkeypatch) -> None:
     """Make the driver die right after every group finished, before the manifest (an interrupted run)."""
-    real = store._write_atomic
+    real = writer.write_atomic
 
     def failing(path: Path, data: bytes) -> None:
         if path.name == MANIFEST:
             raise KeyboardInterrupt("interrupted before the manifest")
         real(path, data)
 
-    monkeypatch.setattr(store, "_write_atomic", failing)
+    monkeypatch.setattr(writer, "write_atomic", failing)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -10,10 +10,10 @@ import pytest
 from PIL import Image
 
 from patchloom import Recipe
-from patchloom.pack.batch import PackedBatch
+from patchloom.packing.batch import PackedBatch
 from patchloom.pipeline import image_to_patches
 from patchloom.image.chain import process_record
-from patchloom.read.shards import Record
+from patchloom.read import Record
 
 RECIPE = Recipe.from_dict({
     "seed": 3,

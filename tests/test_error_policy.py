@@ -15,7 +15,7 @@ from patchloom.pipeline import EmptyEpochError
 
 from conftest import encode_png, random_image, write_shard
 
-BASE = {"sizing": {"patch_size": 8, "max_tokens": 16}, "packing": {"seq_len": 64, "rows": 2, "buffer": 8}}
+BASE = {"sizing": {"patch_size": 8, "max_tokens": 16}, "packing": {"seq_len": 64, "rows": 2, "lookahead": 8}}
 
 
 def shard_with(tmp_path, good: int, bad: int, name="mix.tar"):

@@ -17,7 +17,7 @@ from PIL import Image
 
 from patchloom import PatchSet, Recipe, SampleError
 from patchloom.image.chain import process_record
-from patchloom.read.shards import Record
+from patchloom.read import Record
 
 MAX_TOKENS = 64
 PATCH = 8

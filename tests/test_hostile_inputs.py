@@ -35,7 +35,7 @@ def recipe(on_error: str = "skip") -> Recipe:
         # The corpus is hostile on purpose (a cut shard among few): the skip guard is tested elsewhere.
         "source": {"on_error": on_error, "shuffle_shards": False, "shuffle_buffer": 0, "max_skip_ratio": None},
         "sizing": {"patch_size": P, "max_tokens": MAX_TOKENS, "mode": "native"},
-        "packing": {"seq_len": MAX_TOKENS, "rows": 2, "max_images_per_row": 4, "buffer": 4},
+        "packing": {"seq_len": MAX_TOKENS, "rows": 2, "max_images_per_row": 4, "lookahead": 4},
         "output": {"dtype": "uint8"},
     })
 
@@ -317,10 +317,10 @@ def test_hostile_shard_raises_without_skip(tmp_path):
 
 def test_worker_error_reaches_main_process(tmp_path):
     torch = pytest.importorskip("torch")
-    from patchloom.adapters.torch import PackedDataset
+    from patchloom.adapters.torch import PatchloomDataset
 
     shards, _, names = build(tmp_path)
-    ds = PackedDataset(recipe("raise"), shards)
+    ds = PatchloomDataset(recipe("raise"), shards)
     loader = torch.utils.data.DataLoader(ds, batch_size=None, num_workers=1)
     with pytest.raises(SampleError) as info:  # torch rebuilds the worker's exception type
         for _ in loader:

@@ -161,6 +161,11 @@ def test_flags_fire_on_crafted_inputs_and_stay_quiet_otherwise():
     assert [f.code for f in det] == ["determinism", "determinism"]
 
 
+def test_flag_sizes_read_height_by_width():
+    tall = fl.image_flags([_facts(aspect_error=0.2, key="tall", height=300, width=100, grid_h=12, grid_w=4)])
+    assert "300×100 -> 12×4 patches, h×w" in tall[0].message
+
+
 def test_reservoir_is_seeded_and_uniformish():
     def pick(seed):
         r = Reservoir(5, stream_rng(seed, 0, "report"))
@@ -184,7 +189,7 @@ RECIPE = {
     "source": {"label_key": "cls", "shuffle_buffer": 8},
     "sizing": {"patch_size": 16, "max_tokens": 96, "min_tokens": 8, "mode": "budget", "max_aspect": 8.0},
     "drop": {"mode": "random", "rate": 0.25, "min_keep": 4},
-    "packing": {"seq_len": 256, "rows": 2, "max_images_per_row": 8, "buffer": 8},
+    "packing": {"seq_len": 256, "rows": 2, "max_images_per_row": 8, "lookahead": 8},
     "output": {"dtype": "float32"},
 }
 
@@ -289,6 +294,12 @@ def test_report_is_self_contained_and_every_png_exists(small_report):
     assert any(src.startswith("row-") for src in page.imgs) and any(src.startswith("chart-") for src in page.imgs)
     manifest = json.loads((out / "report.json").read_text())
     assert manifest["summary"]["read"] == result["summary"]["read"]
+
+
+def test_report_sizes_are_height_by_width(small_report):
+    html = (Path(small_report[2]["out_dir"]) / "index.html").read_text(encoding="utf-8")
+    assert "grid h×w" in html and "source h×w" in html
+    assert "w×h" not in html
 
 
 def test_traced_samples_reproduce_the_pipeline_tokens(small_report):

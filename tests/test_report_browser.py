@@ -26,9 +26,9 @@ RECIPE = {
     "seed": 11,
     "source": {"label_key": "cls", "shuffle_buffer": 8},
     "sizing": {"patch_size": 16, "max_tokens": 96, "min_tokens": 8, "mode": "budget", "max_aspect": 8.0},
-    "drop": {"mode": "block", "apply": "mask", "rate": 0.3, "block_min_area": 4, "min_keep": 4},
+    "drop": {"mode": "block", "output": "mask", "rate": 0.3, "block": {"min_area": 4}, "min_keep": 4},
     "patch_ops": [{"name": "standardize"}],
-    "packing": {"seq_len": 256, "rows": 2, "max_images_per_row": 8, "buffer": 8},
+    "packing": {"seq_len": 256, "rows": 2, "max_images_per_row": 8, "lookahead": 8},
     "output": {"dtype": "float32"},
 }
 

@@ -17,26 +17,25 @@ import pytest
 
 from patchloom import Pipeline, Recipe
 from patchloom.demo.data import MIN_SAMPLES, make_demo_shards
-from patchloom.store.core import (
+from patchloom.store import (
     MANIFEST,
     PackedReader,
     StoreError,
-    add_store_commands,
     batch_digests,
-    cmd_verify,
     load_manifest,
     pack_to_dir,
     read_packed,
     verify_dir,
 )
+from patchloom.store.command import add_store_commands, cmd_verify
 
 RECIPE = {
     "seed": 3,
     "source": {"shuffle_buffer": 8},
     "sizing": {"patch_size": 16, "max_tokens": 64, "min_tokens": 4, "max_aspect": 8.0},
-    "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 8, "buffer": 8},
+    "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 8, "lookahead": 8},
 }
-MASKED = {**RECIPE, "drop": {"mode": "random", "rate": 0.25, "apply": "mask"}}
+MASKED = {**RECIPE, "drop": {"mode": "random", "rate": 0.25, "output": "mask"}}
 PER_SHARD = 2  # max_batches_per_shard: several output shards per worker even on tiny data
 
 
@@ -330,7 +329,7 @@ def test_no_tmp_left_and_leftover_tmp_is_not_a_shard(packed1, tmp_path):
 
 
 def test_crash_mid_pack_leaves_only_whole_shards_and_no_manifest(recipe, inputs, tmp_path, monkeypatch):
-    from patchloom.store import core as store
+    from patchloom.store import jobs
 
     class Crashing(Pipeline):
         def __iter__(self):
@@ -339,7 +338,7 @@ def test_crash_mid_pack_leaves_only_whole_shards_and_no_manifest(recipe, inputs,
                     raise RuntimeError("simulated crash")
                 yield batch
 
-    monkeypatch.setattr(store, "Pipeline", Crashing)
+    monkeypatch.setattr(jobs, "Pipeline", Crashing)
     out = tmp_path / "out"
     with pytest.raises(RuntimeError, match="simulated crash"):
         pack_to_dir(recipe, out, shards=inputs, progress=False, max_batches_per_shard=PER_SHARD)
@@ -348,7 +347,7 @@ def test_crash_mid_pack_leaves_only_whole_shards_and_no_manifest(recipe, inputs,
         assert len({m.name.split(".")[0] for m in tar.getmembers()}) == PER_SHARD
     with pytest.raises(StoreError, match="no manifest.json"):
         read_packed(out)
-    monkeypatch.setattr(store, "Pipeline", Pipeline)
+    monkeypatch.setattr(jobs, "Pipeline", Pipeline)
     with pytest.raises(StoreError, match="not empty"):
         pack_to_dir(recipe, out, shards=inputs, progress=False)
     (out / "packed-w000-000001.tar.tmp").write_bytes(b"junk")

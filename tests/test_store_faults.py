@@ -26,19 +26,23 @@ import test_store as store_tests
 from conftest import encode_png, make_shards, random_image, write_shard
 
 from patchloom import Recipe, pack
-from patchloom.store import core as store
 from patchloom.image.patches import PatchSet
-from patchloom.store.core import (
+from patchloom.store import (
     MANIFEST,
     PackedReader,
     StoreError,
-    add_store_commands,
     batch_digests,
+    engine_local,
+    jobs,
     load_manifest,
     pack_to_dir,
     read_packed,
+    verify,
     verify_dir,
 )
+from patchloom.store import format as store_format
+from patchloom.store import manifest as store_manifest
+from patchloom.store.command import add_store_commands
 
 # The store tests' fixtures: two demo input shards, their recipe, and the one-worker pack of them.
 inputs, recipe, packed1 = store_tests.inputs, store_tests.recipe, store_tests.packed1
@@ -153,14 +157,14 @@ def test_at_most_cpu_count_worker_processes_run_at_once(recipe, inputs, tmp_path
         start(self)
 
     monkeypatch.setattr(mpc.SpawnProcess, "start", counted)
-    monkeypatch.setattr(store.os, "cpu_count", lambda: 1)
-    assert store._pool_size(16) == 1
+    monkeypatch.setattr(engine_local.os, "cpu_count", lambda: 1)
+    assert engine_local.pool_size(16) == 1
     out = tmp_path / "out"
     man = pack_to_dir(recipe, out, shards=inputs, workers=2, progress=False, max_batches_per_shard=PER_SHARD)
     assert len(alive) == 2 and peak[0] == 1  # two jobs, one process at a time
     assert {s["worker"] for s in man["shards"]} == {0, 1}
-    monkeypatch.setattr(store.os, "cpu_count", lambda: None)
-    assert store._pool_size(3) == 1
+    monkeypatch.setattr(engine_local.os, "cpu_count", lambda: None)
+    assert engine_local.pool_size(3) == 1
 
 
 def _own_inputs(tmp_path: Path) -> tuple[Path, str]:
@@ -179,8 +183,8 @@ def test_verify_reads_only_inputs_the_shard_spec_confirms(recipe, tmp_path, monk
     secret.parent.mkdir()
     shutil.copy(src / "part-000.tar", secret)
     hashed: list[str] = []
-    real = store._hash_input
-    monkeypatch.setattr(store, "_hash_input", lambda url, **kw: hashed.append(url) or real(url, **kw))
+    real = verify.hash_input
+    monkeypatch.setattr(verify, "hash_input", lambda url, **kw: hashed.append(url) or real(url, **kw))
 
     _edit_manifest(out, _set("inputs.0.path", str(secret)))  # the recorded list points elsewhere
     res = verify_dir(out, progress=False)
@@ -419,7 +423,7 @@ def test_killed_pack_takes_its_workers_with_it_and_overwrite_cleans_up(tmp_path,
 
 
 def _lifeline_child(lifeline) -> None:
-    store._die_with_parent(os.getppid(), lifeline)
+    engine_local.die_with_parent(os.getppid(), lifeline)
     time.sleep(120)
 
 
@@ -434,7 +438,7 @@ def test_a_worker_ends_when_its_lifeline_closes(tmp_path):
         time.sleep(0.5)
         ours.close()  # what the kernel does for a parent that died on a platform without PR_SET_PDEATHSIG
         child.join(timeout=60)
-        assert child.exitcode == store._ORPHANED
+        assert child.exitcode == engine_local.ORPHANED_EXIT
     finally:
         if child.is_alive():
             child.kill()
@@ -567,24 +571,25 @@ def _odd_batch():
 def test_odd_sample_keys_are_stored_and_read_back_exactly():
     batch = _odd_batch()
     assert sorted(k for row in batch.keys for k in row) == sorted(ODD_KEYS)
-    sample = store._encode_batch(store.batch_key(0, 0), batch)
+    sample = store_format.encode_batch(store_format.batch_key(0, 0), batch)
     data = sample["keys.json"]
     data.decode("utf-8")  # always valid UTF-8
     members = {k: v for k, v in sample.items() if k != "__key__"}
-    back = store._decode_batch(members, "test", store._batch_shape(batch))
+    back = store_format.decode_batch(members, "test", jobs.batch_shape(batch))
     assert back.keys == batch.keys and batch_digests(back) == batch_digests(batch)
 
 
 def test_odd_keys_go_through_a_shard_writer_and_the_manifest(tmp_path):
     batch = _odd_batch()
-    writer = store._ShardWriter(tmp_path, 0, 4)
+    writer = jobs.ShardWriter(tmp_path, 0, 4)
     writer.write(0, batch)
     writer.finish()
     with tarfile.open(tmp_path / SHARD) as tar:
         assert [m.name.split(".")[0] for m in tar.getmembers()] == ["w000-b00000000"] * 6  # our names only
-    text = store._manifest_bytes({"ledger": {"skip_examples": {"decode": [ODD_KEYS[0]]}}}).decode("utf-8")
+    text = store_manifest.manifest_bytes({"ledger": {"skip_examples": {"decode": [ODD_KEYS[0]]}}}).decode("utf-8")
     assert json.loads(text)["ledger"]["skip_examples"]["decode"] == [ODD_KEYS[0]]
-    assert store._keys_bytes([["\ud83d\ude00"]]) == store._keys_bytes(json.loads(store._keys_bytes([["\ud83d\ude00"]])))
+    once = store_format.keys_bytes([["\ud83d\ude00"]])
+    assert once == store_format.keys_bytes(json.loads(once))
 
 
 def test_pack_reads_a_tar_with_non_utf8_member_names(tmp_path):

@@ -1,11 +1,13 @@
 #!/usr/bin/env python
-"""Time a recipe's pipeline beside the plain square-resize baseline; same as `patchloom bench`.
+"""Run one of patchloom's benchmarks; the same as `patchloom bench BENCHMARK ...`.
 
-    python tools/bench.py recipes/pretrain.yaml
-    python tools/bench.py demo --repeats 5 --json bench.json
+    python tools/bench.py pipeline --corpus recipes/pretrain.yaml
+    python tools/bench.py pipeline --corpus photos --repeats 5 --json bench.json
+    python tools/bench.py drops --corpus demo
 
-RECIPE is a YAML file, or `demo` for the built-in demo recipe of `patchloom demo`. When the shards
-lie in ./patchloom-demo and are absent, the demo shards are made there first.
+BENCHMARK is pipeline, drops, packing, resume, workers or soak; `--corpus` is `photos`, `demo`
+(default) or a recipe YAML file. The built-in corpora are made on first use (./patchloom-bench,
+./patchloom-demo). `python tools/bench.py BENCHMARK --help` lists a benchmark's own options.
 """
 
 from __future__ import annotations

@@ -24,10 +24,10 @@ except ImportError:  # run from a checkout without installing: use the repositor
     sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "src"))
 
 import patchloom.image.decode as decode_mod
-from patchloom.bench.pipeline import _time_pipeline, _warm_cache
+from patchloom.bench.pipeline import time_pipeline, warm_cache
 from patchloom.bench.photos import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern
-from patchloom.recipe.schema import Recipe
-from patchloom.read.shards import expand_shards
+from patchloom.recipe import Recipe
+from patchloom.read import expand_shards
 
 
 class _NoBar:
@@ -51,13 +51,13 @@ def main(argv: list[str] | None = None) -> int:
     fast_lib = decode_mod.simplejpeg
     variants = [("libjpeg-turbo scaled", shipped, fast_lib), ("Pillow draft scaled", shipped, None),
                 ("Pillow full decode", full, None)]
-    _warm_cache(shipped, urls)
+    warm_cache(shipped, urls)
     rates: dict[str, list[float]] = {name: [] for name, _, _ in variants}
     try:
         for _ in range(args.repeats):
             for name, recipe, lib in variants:
                 decode_mod.simplejpeg = lib
-                rates[name].append(_time_pipeline(recipe, urls, None, _NoBar()).images_per_s)
+                rates[name].append(time_pipeline(recipe, urls, None, _NoBar()).images_per_s)
     finally:
         decode_mod.simplejpeg = fast_lib
     first = statistics.median(rates[variants[0][0]])

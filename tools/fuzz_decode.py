@@ -23,9 +23,9 @@ import numpy as np
 from PIL import Image
 
 from patchloom import PatchSet, Recipe, SampleError
-from patchloom.pipeline import _gist
+from patchloom.ledger import gist
 from patchloom.image.chain import process_record
-from patchloom.read.shards import Record
+from patchloom.read import Record
 
 
 def seed_images(rng: np.random.Generator) -> list[tuple[str, bytes]]:
@@ -84,7 +84,7 @@ def run_case(ext: str, data: bytes, recipe: Recipe, max_tokens: int, patch: int)
     try:
         ps = process_record(rec, recipe, 0)
     except SampleError as err:
-        return f"skip {err.stage}: {_gist(err.cause)}"
+        return f"skip {err.stage}: {gist(err.cause)}"
     if not isinstance(ps, PatchSet):
         raise AssertionError(f"returned {type(ps).__name__}, not a PatchSet")
     gh, gw = ps.grid

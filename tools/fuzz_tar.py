@@ -1,5 +1,5 @@
 """Fuzz the tar reader by hand: random tars (cuts at any byte, repeated names, odd member types,
-huge declared sizes, long and non-UTF-8 names, flipped bytes, gzip) through `sources.read_shard`.
+huge declared sizes, long and non-UTF-8 names, flipped bytes, gzip) through `patchloom.read.read_shard`.
 
     python tools/fuzz_tar.py --cases 3000 --seed 0 --out fuzz-findings
 
@@ -28,7 +28,7 @@ from pathlib import Path
 
 import numpy as np
 
-from patchloom.read.shards import Record, ShardTask, SourceError, read_shard
+from patchloom.read import Record, ShardTask, SourceError, read_shard
 
 HANG_S = 20  # a case still running after this long is a finding (the reader must always end)
 EXTS = ("jpg", "png", "cls", "txt", "JPG", "Png", "tar.gz", "json")

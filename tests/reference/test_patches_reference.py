@@ -158,7 +158,7 @@ def test_pipeline_without_reduced_decode_equals_pillow_full_decode(tmp_path):
         "source": {"shuffle_shards": False},
         "decode": {"reduced_jpeg": False},
         "sizing": {"patch_size": p, "max_tokens": 64, "resample": "bicubic"},
-        "packing": {"seq_len": 64, "rows": 1, "buffer": 1, "max_images_per_row": 1},
+        "packing": {"seq_len": 64, "rows": 1, "lookahead": 1, "max_images_per_row": 1},
     })
     members = {
         "a.png": _png(_photo_like(600, 800, 1)),

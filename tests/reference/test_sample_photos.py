@@ -47,7 +47,7 @@ def _recipe(shards=None) -> Recipe:
         "seed": 3,
         "source": {"shards": shards, "shuffle_shards": True, "shuffle_buffer": 4},
         "sizing": {"patch_size": P, "max_tokens": BUDGET, "resample": "bicubic"},
-        "packing": {"seq_len": 512, "rows": 2, "buffer": 3, "max_images_per_row": 4},
+        "packing": {"seq_len": 512, "rows": 2, "lookahead": 3, "max_images_per_row": 4},
     })
 
 
@@ -135,7 +135,7 @@ def test_sampled_budgets_agree_between_pipeline_and_image_to_patches(tmp_path, p
         "seed": 5,
         "source": {"shards": shards, "shuffle_buffer": 3},
         "sizing": {"mode": "sampled", "patch_size": P, "max_tokens": BUDGET, "sampled": {"range": [64, BUDGET]}},
-        "packing": {"seq_len": 512, "rows": 2, "buffer": 4, "max_images_per_row": 4},
+        "packing": {"seq_len": 512, "rows": 2, "lookahead": 4, "max_images_per_row": 4},
     })
     grids_by_epoch = []
     for epoch in (0, 1):

@@ -16,7 +16,7 @@ import numpy as np
 
 from ..image.dropping import apply_drop, decide_drop
 from ..pipeline import Pipeline
-from ..recipe.schema import DropConfig, Recipe
+from ..recipe import DropConfig, Recipe
 from ..seeding import sample_rng
 
 #: The modes compared, each at a typical setting.
@@ -28,14 +28,14 @@ DROP_MODES: dict[str, dict[str, Any]] = {
     "grid 0.75": {"mode": "grid", "rate": 0.75},
     "stripes 0.3": {"mode": "stripes", "rate": 0.3},
     "content 0.5": {"mode": "content", "rate": 0.5},
-    "block 0.4 (mask)": {"mode": "block", "rate": 0.4, "apply": "mask"},
+    "block 0.4 (mask)": {"mode": "block", "rate": 0.4, "output": "mask"},
 }
 
 
 def bench_drop_modes(recipe: Recipe, *, shards: str | list[str] | None = None, max_images: int = 200,
                      repeats: int = 3) -> dict[str, Any]:
     """Per-image cost (microseconds) and realised drop rate of each mode on the recipe's images."""
-    base = recipe.replace(drop={"mode": "none", "apply": "drop"}, patch_ops=[], augment=[])
+    base = recipe.replace(drop={"mode": "none", "output": "remove"}, patch_ops=[], augment=[])
     pipe = Pipeline(base, shards=shards)
     sets = []
     t0 = 0.0
@@ -57,10 +57,10 @@ def bench_drop_modes(recipe: Recipe, *, shards: str | list[str] | None = None, m
             for ps in sets:
                 rng = sample_rng(recipe.seed, rep, ps.key, "drop")
                 decision = decide_drop(cfg, ps.grid, ps.patches, rng)
-                out = apply_drop(ps, decision, cfg.apply)
+                out = apply_drop(ps, decision, cfg.output)
                 if rep == 0:
                     total = ps.num_tokens
-                    dropped = int(out.masked.sum()) if cfg.apply == "mask" else total - out.num_tokens
+                    dropped = int(out.masked.sum()) if cfg.output == "mask" else total - out.num_tokens
                     rates.append(dropped / total)
                     targets.append(decision.rate)
             times.append((time.perf_counter() - t) / len(sets) * 1e6)

@@ -12,9 +12,10 @@ from typing import Any
 
 import numpy as np
 
-from ..pack.packer import ALGORITHMS, Packer
+from ..packing.assign import ALGORITHMS
+from ..packing.packer import Packer
 from ..image.patches import PatchSet
-from ..recipe.schema import Recipe
+from ..recipe import Recipe
 from ..image.sizing import plan_size
 
 
@@ -59,9 +60,11 @@ def bench_packing(recipe: Recipe, *, images: int = 20_000, buffers: tuple[int, .
 
 
 def format_packing_bench(r: dict[str, Any]) -> str:
+    """Table: algorithm, look-ahead size (the recipe's packing.lookahead), padding %, cost per image."""
     lines = [f"packing {r['images']} budget-sized images (mean {r['tokens_mean']:.0f} tokens) into "
              f"{r['rows']} x {r['seq_len']} batches; final flush excluded",
-             f"  {'algorithm':<13} {'buffer':>6} {'padding':>9} {'us/image':>9}"]
+             f"  {'algorithm':<13} {'lookahead':>9} {'padding':>9} {'us/image':>9}"]
     for row in r["results"]:
-        lines.append(f"  {row['algorithm']:<13} {row['buffer']:>6} {row['padding_pct']:>8.2f}% {row['us_per_image']:>9.1f}")
+        lines.append(f"  {row['algorithm']:<13} {row['buffer']:>9} {row['padding_pct']:>8.2f}% "
+                     f"{row['us_per_image']:>9.1f}")
     return "\n".join(lines)

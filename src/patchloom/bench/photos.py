@@ -5,7 +5,7 @@ archive (whose odd formats and tiny thumbnails are there to test correctness). T
 common practice for web image sets: most images around half a megapixel (mean about 500x430),
 one in ten a large camera image of 2 to 15 megapixels, aspect ratios from 1:3 to 3:1, baseline
 JPEG at quality 80 to 92 with 4:2:0 chroma, a few progressive. The scenes are the demo's drawn
-shorelines, facades and panoramas (patchloom.demo.data): nothing real is depicted.
+shorelines, facades and panoramas (patchloom.demo.scenes): nothing real is depicted.
 """
 
 from __future__ import annotations
@@ -21,7 +21,7 @@ import numpy as np
 from PIL import Image
 from tqdm import tqdm
 
-from ..demo.data import draw_facade, draw_panorama, draw_shoreline
+from ..demo.scenes import draw_facade, draw_panorama, draw_shoreline
 
 __all__ = ["PHOTO_RECIPE", "make_photo_shards", "photo_shard_pattern", "photo_size"]
 
@@ -29,7 +29,7 @@ _STEM = "photos-"
 _MTIME = 1_700_000_000
 _SCENES = (draw_shoreline, draw_facade, draw_panorama)
 
-#: The recipe `patchloom bench photos` runs: 196 tokens at patch 16 (the token count of a 224x224
+#: The recipe of `patchloom bench ... --corpus photos`: 196 tokens at patch 16 (the token count of a 224x224
 #: square, so the baseline and the pipeline hand the model the same number of tokens per image).
 PHOTO_RECIPE = {
     "seed": 0,

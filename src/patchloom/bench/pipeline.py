@@ -1,6 +1,6 @@
 """Benchmark: the pipeline beside a plain square-resize baseline, in one process, over the same shards.
 
-The baseline is what most image loaders do today: read the same tar records (patchloom.read.shards, in
+The baseline is what most image loaders do today: read the same tar records (patchloom.read, in
 shard order, no shuffle), decode every image fully with Pillow and `convert("RGB")`, squash it to a
 square of `patch_size * isqrt(max_tokens)` pixels with the recipe's resample filter, patchify it with
 numpy and stack fixed-count batches. The candidate is a full iteration of `Pipeline(recipe, shards)`.
@@ -15,27 +15,24 @@ from __future__ import annotations
 import gc
 import io
 import math
-import re
 import statistics
 import sys
 import time
 from collections.abc import Iterator
 from dataclasses import asdict, dataclass
-from pathlib import Path
 from typing import Any
 
-import braceexpand
 import numpy as np
 from PIL import Image
 from tqdm import tqdm
 
-from ..pack.packer import Packer
+from ..packing.packer import Packer
 from ..image.patches import normalize, patchify
 from ..pipeline import Pipeline
 from ..image.chain import SampleError, parse_label, process_record
-from ..recipe.schema import Recipe
-from ..image.sizing import RESAMPLE
-from ..read.shards import ShardTask, expand_shards, read_tasks, shard_order
+from ..recipe import Recipe
+from ..image.sizing import RESAMPLE_FILTERS
+from ..read import ShardTask, expand_shards, read_tasks, shard_order
 
 try:  # not on Windows; the memory column is then left empty
     import resource
@@ -47,11 +44,13 @@ __all__ = [
     "SquareBaseline",
     "baseline_batch_images",
     "baseline_side",
-    "ensure_demo_shards",
     "format_bench",
     "run_bench",
     "square_patches",
     "stage_profile",
+    "time_baseline",
+    "time_pipeline",
+    "warm_cache",
 ]
 
 #: Stages in the order the per-sample chain runs them, as `process_record(timings=...)` names them.
@@ -87,7 +86,7 @@ def square_patches(data: bytes, *, side: int, patch_size: int, resample: str = "
     """Encoded bytes -> [T, patch*patch*3] uint8: full Pillow decode, RGB, square resize, patchify."""
     with Image.open(io.BytesIO(data)) as im:
         rgb = im.convert("RGB")
-    square = rgb.resize((side, side), RESAMPLE[resample])
+    square = rgb.resize((side, side), RESAMPLE_FILTERS[resample])
     return patchify(np.asarray(square), patch_size)
 
 
@@ -223,7 +222,8 @@ def _peak_rss_mib() -> float | None:
     return peak / (1 << 20) if sys.platform == "darwin" else peak / 1024  # bytes on macOS, KiB elsewhere
 
 
-def _time_baseline(recipe: Recipe, urls: list[str], max_images: int | None, bar: tqdm) -> RunResult:
+def time_baseline(recipe: Recipe, urls: list[str], max_images: int | None, bar: tqdm) -> RunResult:
+    """One timed pass of the square-resize baseline over `urls` (stops after `max_images`)."""
     base = SquareBaseline(recipe, urls, max_images=max_images)
     res = RunResult("baseline")
     t0, c0 = time.perf_counter(), time.process_time()
@@ -241,7 +241,8 @@ def _time_baseline(recipe: Recipe, urls: list[str], max_images: int | None, bar:
     return res
 
 
-def _time_pipeline(recipe: Recipe, urls: list[str], max_images: int | None, bar: tqdm) -> RunResult:
+def time_pipeline(recipe: Recipe, urls: list[str], max_images: int | None, bar: tqdm) -> RunResult:
+    """One timed pass of `Pipeline(recipe, urls)` (stops after the batch that reaches `max_images`)."""
     pipe = Pipeline(recipe, shards=urls)
     res = RunResult("pipeline")
     t0, c0 = time.perf_counter(), time.process_time()
@@ -259,7 +260,7 @@ def _time_pipeline(recipe: Recipe, urls: list[str], max_images: int | None, bar:
     return res
 
 
-def _warm_cache(recipe: Recipe, urls: list[str]) -> None:
+def warm_cache(recipe: Recipe, urls: list[str]) -> None:
     """Read every record once, untimed, so neither side pays for a cold file cache or for the
     one-time imports of the first shard read."""
     for _ in read_tasks([ShardTask(u) for u in urls], allow_shell=False):
@@ -275,7 +276,7 @@ def stage_profile(recipe: Recipe, urls: list[str], max_images: int | None = None
     """
     times: dict[str, float] = {}
     p = recipe.packing
-    packer = Packer(seq_len=p.seq_len, rows=p.rows, max_images_per_row=p.max_images_per_row, buffer=p.buffer,
+    packer = Packer(seq_len=p.seq_len, rows=p.rows, max_images_per_row=p.max_images_per_row, buffer=p.lookahead,
                     algorithm=p.algorithm)
     images = 0
     records = read_tasks([ShardTask(u) for u in urls], allow_shell=False)
@@ -341,9 +342,9 @@ def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_imag
         raise ValueError(f"max_images must be >= 1 (got {max_images})")
     src = recipe.source
     urls = expand_shards(shards if shards is not None else src.shards, allow_shell=False)
-    _warm_cache(recipe, urls)
+    warm_cache(recipe, urls)
     runs: dict[str, list[RunResult]] = {side: [] for side in SIDES}
-    timers = {"baseline": _time_baseline, "pipeline": _time_pipeline}
+    timers = {"baseline": time_baseline, "pipeline": time_pipeline}
     for i in range(repeats):
         for side in SIDES:
             gc.collect()
@@ -426,33 +427,3 @@ def format_bench(result: dict) -> str:
                  f"{ratio['useful_tokens_per_s']:.2f}x useful tokens/s")
     return "\n".join(lines)
 
-
-# --------------------------------------------------------------------------------------------
-# Demo data for the command line
-# --------------------------------------------------------------------------------------------
-
-_DEMO_NAME = re.compile(r"demo-(\d{6})\.tar")
-
-
-def ensure_demo_shards(spec: str | list[str] | None, *, demo_dir: str | Path = "patchloom-demo",
-                       progress: bool = True) -> bool:
-    """Make the demo shards in `demo_dir` if `spec` names shards there and they are absent.
-
-    Returns True when shards were written. A spec that points elsewhere is left alone.
-    """
-    if spec is None:
-        return False
-    folder = Path(demo_dir).resolve()
-    wanted: list[int] = []
-    for item in [spec] if isinstance(spec, str) else spec:
-        for name in braceexpand.braceexpand(item.removeprefix("file:")):
-            path = Path(name).expanduser()
-            match = _DEMO_NAME.fullmatch(path.name)
-            if match and path.resolve().parent == folder:
-                wanted.append(int(match.group(1)))
-    if not wanted or all((folder / f"demo-{i:06d}.tar").is_file() for i in wanted):
-        return False
-    from ..demo.data import make_demo_shards
-
-    make_demo_shards(folder, shards=max(wanted) + 1, progress=progress)
-    return True

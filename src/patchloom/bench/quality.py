@@ -16,10 +16,10 @@ from typing import Any
 import numpy as np
 
 from ..image.decode import decode_path_counts, open_image, reset_decode_path_counts
-from ..recipe.schema import Recipe
-from ..image.chain import _reduce_hint, find_image, plan_for
+from ..recipe import Recipe
+from ..image.chain import find_image, plan_for, reduce_hint
 from ..image.sizing import SizePlan, resize_to_plan
-from ..read.shards import ShardTask, expand_shards, read_tasks
+from ..read import ShardTask, expand_shards, read_tasks
 
 __all__ = ["decode_quality", "format_quality", "psnr"]
 
@@ -59,7 +59,7 @@ def decode_quality(recipe: Recipe, *, shards: str | list[str] | None = None, max
             if opened.format != "JPEG":
                 continue
             plan = plan_for(opened.height, opened.width, recipe, seed=recipe.seed, epoch=0, key=rec.key)
-            hint = _reduce_hint(opened, plan) if recipe.decode.reduced_jpeg else None
+            hint = reduce_hint(opened, plan) if recipe.decode.reduced_jpeg else None
             image = opened.decode(background=bg, reduce_to=hint)
             full = open_image(data, pixel_limit=limit, memory_limit=recipe.decode.memory_limit).decode(background=bg)
         except Exception:  # noqa: BLE001 - a broken sample is counted, not measured

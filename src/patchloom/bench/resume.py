@@ -10,7 +10,7 @@ import time
 from typing import Any
 
 from ..pipeline import Pipeline
-from ..recipe.schema import Recipe
+from ..recipe import Recipe
 
 
 def bench_resume(recipe: Recipe, *, shards: str | list[str] | None = None, points: int = 5) -> dict[str, Any]:

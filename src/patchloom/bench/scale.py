@@ -1,6 +1,6 @@
 """Two benchmarks of the pipeline at scale: torch DataLoader worker scaling, and a memory soak.
 
-`bench_workers` times `DataLoader(PackedDataset(...), num_workers=w)` for each w over the same
+`bench_workers` times `DataLoader(PatchloomDataset(...), num_workers=w)` for each w over the same
 shards, with persistent workers, and reports images/s of a warm epoch (after one untimed epoch
 that pays for starting the workers) and of the cold first epoch, plus each w's ratio to w = 0.
 
@@ -20,8 +20,8 @@ from typing import Any
 
 from tqdm import tqdm
 
-from ..recipe.schema import Recipe
-from ..read.shards import expand_shards
+from ..recipe import Recipe
+from ..read import expand_shards
 
 __all__ = ["bench_soak", "bench_workers", "current_rss_mib", "format_soak", "format_workers"]
 
@@ -43,14 +43,14 @@ def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, work
     """Images/s through a torch DataLoader for each worker count (warm epochs and the cold first one)."""
     from torch.utils.data import DataLoader
 
-    from ..adapters.torch import PackedDataset
+    from ..adapters.torch import PatchloomDataset
 
     if epochs < 2:
         raise ValueError(f"epochs must be >= 2 (one cold, at least one warm; got {epochs})")
     urls = expand_shards(shards if shards is not None else recipe.source.shards, allow_shell=False)
     rows = []
     for w in workers:
-        ds = PackedDataset(recipe, urls, as_tensors=True)
+        ds = PatchloomDataset(recipe, urls, as_tensors=True)
         loader = DataLoader(ds, batch_size=None, num_workers=w, persistent_workers=w > 0)
         rates, images, cold = [], 0, 0.0
         for epoch in range(epochs):
@@ -134,7 +134,7 @@ def bench_soak(recipe: Recipe, *, shards: str | list[str] | None = None, images:
 
 
 def _count_samples(urls: list[str]) -> int:
-    from ..read.shards import ShardTask, read_tasks
+    from ..read import ShardTask, read_tasks
 
     return sum(1 for _ in read_tasks([ShardTask(u) for u in urls], allow_shell=False))
 

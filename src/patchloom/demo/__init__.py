@@ -1,1 +1,5 @@
-"""The made-up demo archive and the demo recipe."""
+"""The made-up demo archive (`demo.data`) and the demo recipe (`demo.recipe`)."""
+
+from .recipe import DEMO_RECIPE
+
+__all__ = ["DEMO_RECIPE"]

@@ -11,8 +11,8 @@ from typing import Any
 import numpy as np
 
 from ..image.patches import PatchSet
-from ..recipe.schema import Recipe
-from ..read.shards import expand_shards
+from ..recipe import Recipe
+from ..read import expand_shards
 from . import charts, palette, render
 from .collect import Collected, Traced, collect, determinism
 from .flags import ASPECT_ERROR_LIMIT, ROW_PADDING_LIMIT, UPSCALE_LIMIT, find_flags
@@ -157,9 +157,9 @@ def _sample_card(t: Traced, n: int, recipe: Recipe, w: _Writer) -> str:
         crop_note = "; crop outlined"
     decoded_note = ""
     if (original.width, original.height) != (src_w, src_h):
-        decoded_note = f", decoded at {original.width}×{original.height}"
+        decoded_note = f", decoded at {original.height}×{original.width}"
     name, pw_, ph_ = w.png(f"{stem}-original.png", shown)
-    f1 = figure(name, pw_, ph_, "original", f"original {src_w}×{src_h}{decoded_note}{crop_note}")
+    f1 = figure(name, pw_, ph_, "original", f"original {src_h}×{src_w}{decoded_note}{crop_note}")
 
     # 2: the resized image with its patch grid
     resized = tr["resized"]
@@ -167,7 +167,7 @@ def _sample_card(t: Traced, n: int, recipe: Recipe, w: _Writer) -> str:
     big = render.fit(resized, PANEL)
     name, pw_, ph_ = w.png(f"{stem}-grid.png", render.draw_grid(big, grid))
     f2 = figure(name, pw_, ph_, "resized with patch grid",
-                f"resized {resized.shape[1]}×{resized.shape[0]}, grid {plan.grid_w}×{plan.grid_h} patches "
+                f"resized {resized.shape[0]}×{resized.shape[1]}, grid {plan.grid_h}×{plan.grid_w} patches "
                 f"of {plan.patch_size}px")
 
     # 3: after augmentation
@@ -191,15 +191,15 @@ def _sample_card(t: Traced, n: int, recipe: Recipe, w: _Writer) -> str:
     rows = [
         ("label", esc(ps.label if ps.label is not None else "none")),
         ("file", esc(f"{meta.get('member', '?')} · {meta.get('format', '?')} {meta.get('mode', '')}")),
-        ("source", f"{src_w}×{src_h}"),
-        ("crop", f"({left}, {top})–({right}, {bottom}) = {right - left}×{bottom - top}"),
-        ("content", f"{plan.content_w}×{plan.content_h}" + (f" at ({plan.pad_left}, {plan.pad_top})"
-                                                             if plan.pad_top or plan.pad_left else "")),
-        ("grid w×h", f"{plan.grid_w}×{plan.grid_h} = {plan.tokens} tokens (budget {plan.budget})"),
+        ("source h×w", f"{src_h}×{src_w}"),
+        ("crop", f"rows {top}–{bottom}, columns {left}–{right} = {bottom - top}×{right - left}"),
+        ("content h×w", f"{plan.content_h}×{plan.content_w}" + (f" at row {plan.pad_top}, column {plan.pad_left}"
+                                                                 if plan.pad_top or plan.pad_left else "")),
+        ("grid h×w", f"{plan.grid_h}×{plan.grid_w} = {plan.tokens} tokens (budget {plan.budget})"),
         ("aspect error", f"{plan.aspect_error:.4f}" + (" ⚠" if plan.aspect_error > ASPECT_ERROR_LIMIT else "")),
         ("scale", f"{plan.scale:.3f}×" + (" ⚠ upscaled" if plan.scale > UPSCALE_LIMIT else "")),
         ("drop", (f"{drop['mode']}, target {drop['rate']:.3f}, "
-                  + ("visible" if recipe.drop.apply == "mask" else "kept") + f" {drop['kept']}/{drop['total']}")
+                  + ("visible" if recipe.drop.output == "mask" else "kept") + f" {drop['kept']}/{drop['total']}")
          if drop else "none"),
         ("tokens sent", str(ps.num_tokens)),
         ("same as pipeline", yes_no(t.matches_stream, "yes, identical tokens", "NO: tokens differ")),
@@ -220,7 +220,7 @@ def _rows_section(col: Collected, recipe: Recipe, w: _Writer) -> str:
             name, pw_, ph_ = w.png(f"row-b{b}-r{r}.png", picture)
             pad = 1 - np.count_nonzero(batch.segment_ids[r]) / batch.seq_len
             segs = "".join(f'{swatch(palette.segment_colour(it.segment))}<code>{esc(it.key)}</code> '
-                           f"{it.grid[1]}×{it.grid[0]}, {it.tokens} tok" for it in items)
+                           f"{it.grid[0]}×{it.grid[1]}, {it.tokens} tok" for it in items)
             parts.append(f'<div class="row" data-row="{b}-{r}">{img(name, pw_, ph_, f"batch {b} row {r}")}'
                          f'<div class="segs">row {r}: {len(items)} images, {100 * pad:.1f} % padding'
                          f"{swatch(palette.PADDING)}padding{segs}</div></div>")
@@ -249,7 +249,7 @@ def _determinism_section(col: Collected, recipe: Recipe, epoch: int, w: _Writer)
         name, pw_, ph_ = tile(det["traces"][e], f"det-epoch-{e}.png")
         tr = det["traces"][e]
         figs.append(figure(name, pw_, ph_, f"epoch {e}",
-                           f"epoch {e}: grid {tr['plan'].grid_w}×{tr['plan'].grid_h}, "
+                           f"epoch {e}: grid {tr['plan'].grid_h}×{tr['plan'].grid_w}, "
                            f"{tr['patchset'].num_tokens} tokens"))
     a = tile(det["traces"][epoch], "det-repeat-a.png")
     b = tile(det["repeat"], "det-repeat-b.png")

@@ -54,7 +54,7 @@ def image_flags(images: Sequence[ImageFacts], *, upscale: float = UPSCALE_LIMIT,
         out.append(Flag(
             "upscale",
             f"{len(up)} of {n} images are upscaled more than {upscale:g}x "
-            f"(largest {up[0].scale:.1f}x: {up[0].name}, {up[0].width}x{up[0].height} source)",
+            f"(largest {up[0].scale:.1f}x: {up[0].name}, {up[0].height}×{up[0].width} source)",
             len(up), tuple(f"{im.name} {im.scale:.1f}x" for im in up[:EXAMPLES]),
         ))
     off = _worst(images, lambda im: im.aspect_error, aspect_error)
@@ -63,7 +63,7 @@ def image_flags(images: Sequence[ImageFacts], *, upscale: float = UPSCALE_LIMIT,
             "aspect",
             f"{len(off)} of {n} images get a grid whose aspect is off by more than {aspect_error:g} "
             f"(log units; worst {off[0].aspect_error:.3f}: {off[0].name}, "
-            f"{off[0].width}x{off[0].height} -> {off[0].grid_w}x{off[0].grid_h} patches)",
+            f"{off[0].height}×{off[0].width} -> {off[0].grid_h}×{off[0].grid_w} patches, h×w)",
             len(off), tuple(f"{im.name} {im.aspect_error:.3f}" for im in off[:EXAMPLES]),
         ))
     return out

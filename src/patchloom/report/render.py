@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from ..pack.batch import PackedBatch
+from ..packing.batch import PackedBatch
 from ..image.patches import unpatchify
 from . import palette
 

@@ -4,7 +4,7 @@ This is the only module that imports Ray (lazily: `pip install 'patchloom[ray]'`
 
 The work is split exactly as the local engine splits it: `--workers N` makes N groups, and group i is
 the local engine's job i, `Pipeline(recipe, shards=inputs, epoch, worker=i, num_workers=N)`, run by
-the same `store._job_pack` and writing the same `packed-w{i:03d}-*.tar` shards. Here each group is
+the same `jobs.job_pack` and writing the same `packed-w{i:03d}-*.tar` shards. Here each group is
 one Ray Data task (`ray.data.from_items(...).map(...)`, one job per block), consumed through a
 streaming iterator so results arrive as groups finish, in any order; the driver puts them back in
 group order and writes the manifest with the code the local engine uses.
@@ -52,31 +52,20 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from ..recipe.schema import Recipe, RecipeError
-from ..image.chain import SampleError, SkipRatioError
-from ..read.shards import SourceError, reader_tasks
-from .core import (
-    _TMP,
-    FORMAT_VERSION,
-    GROUPS,
-    MANIFEST,
-    StoreError,
-    _bar,
-    _check_shard_entries,
-    _Fields,
-    _hash_input,
-    _job_pack,
-    _ours,
-    _write_atomic,
-    load_manifest,
-)
+from ..errors import PatchloomError
+from ..read import reader_tasks
+from ..recipe import Recipe
+from .engine_local import progress_bar
+from .format import FORMAT_VERSION, GROUPS, MANIFEST, TMP, StoreError, is_pack_file, write_atomic
+from .inputs import hash_input
+from .jobs import job_pack
+from .manifest import Fields, check_shard_entries, load_manifest
 
 __all__ = ["FAIL_ONCE_ENV", "MAX_RETRIES", "finished_manifest", "forget_groups", "run_pack_jobs"]
 
 FAIL_ONCE_ENV = "PATCHLOOM_TEST_FAIL_ONCE"
 MAX_RETRIES = 3  # per group, for dead workers and OSErrors; deterministic errors are never retried
 RUN_RECORD = "run.json"
-_EXPECTED = (StoreError, SampleError, SourceError, RecipeError, SkipRatioError)  # their message says it all
 _POLL_S = 0.5
 
 
@@ -125,7 +114,7 @@ def _shards_intact(out: Path, entries: list[dict[str, Any]]) -> str | None:
         path = out / entry["name"]
         if not path.is_file():
             return f"{entry['name']} is missing"
-        if path.stat().st_size != entry["bytes"] or _hash_input(str(path), allow_shell=False)[1] != entry["file_sha256"]:
+        if path.stat().st_size != entry["bytes"] or hash_input(str(path), allow_shell=False)[1] != entry["file_sha256"]:
             return f"{entry['name']} does not match its recorded sha256"
     return None
 
@@ -134,8 +123,8 @@ def _record_problem(out: Path, group: int, result: dict[str, Any], per_shard: in
     """What is wrong with a done-record's shard list (None: it is what pack writes for this group), checked
     before any file it names is opened: a record is a file in the folder, as untrusted as a manifest."""
     try:
-        batches = _check_shard_entries(_Fields(_record_path(out, group)), result.get("shards"),
-                                       workers=group + 1, per_shard=per_shard)
+        batches = check_shard_entries(Fields(_record_path(out, group)), result.get("shards"),
+                                      workers=group + 1, per_shard=per_shard)
     except StoreError as exc:
         return str(exc)
     if not isinstance(result.get("ledger_state"), dict):
@@ -180,13 +169,13 @@ def _clear_unfinished(out: Path, keep: dict[int, dict[str, Any]]) -> None:
     """Remove stale temporary files, and the shards and records of every group not kept."""
     names = {entry["name"] for result in keep.values() for entry in result["shards"]}
     for p in out.iterdir():
-        if p.is_file() and _ours(p) and p.name != MANIFEST and p.name not in names:
+        if p.is_file() and is_pack_file(p) and p.name != MANIFEST and p.name not in names:
             p.unlink()
     groups = out / GROUPS
     if groups.is_dir():
         for p in groups.iterdir():
-            stem = p.name.removesuffix(_TMP).removesuffix(".json")
-            if p.name.endswith(_TMP) or (stem.startswith("w") and stem[1:].isdigit() and int(stem[1:]) not in keep):
+            stem = p.name.removesuffix(TMP).removesuffix(".json")
+            if p.name.endswith(TMP) or (stem.startswith("w") and stem[1:].isdigit() and int(stem[1:]) not in keep):
                 p.unlink()
 
 
@@ -208,7 +197,7 @@ def finished_manifest(out: Path, jobs: list[dict[str, Any]], *, resume: bool) ->
         raise StoreError(f"{out} holds a finished pack with other settings ({differ} differ): choose another "
                          "folder, or pass --overwrite to replace it")
     problem = next((f"input {i['path']} changed" for i in man["inputs"]
-                    if _hash_input(i["path"], allow_shell=job["allow_shell"])[1] != i["sha256"]), None)
+                    if hash_input(i["path"], allow_shell=job["allow_shell"])[1] != i["sha256"]), None)
     problem = problem or _shards_intact(out, man["shards"])
     if problem is None:
         _note(f"{out} is already packed with these settings (inputs and shards re-hashed); nothing to do")
@@ -273,11 +262,11 @@ def _group_task(row: dict[str, Any], *, counter=None) -> dict[str, Any]:
             counter.add.remote(event[2])
 
     try:
-        result = _job_pack(job, report)
-    except _EXPECTED as exc:  # it would recur on a retry: returned, so Ray does not retry it, and raised by the driver
+        result = job_pack(job, report)
+    except PatchloomError as exc:  # ours, so a retry would meet it again: returned (Ray retries only raises)
         return {"group": group, "result": "", "error": f"group {group}: {exc}"}
     record = {"run": payload["run"], "result": result}
-    _write_atomic(_record_path(out, group), json.dumps(record, sort_keys=True).encode("utf-8"))
+    write_atomic(_record_path(out, group), json.dumps(record, sort_keys=True).encode("utf-8"))
     return {"group": group, "result": json.dumps(result), "error": ""}
 
 
@@ -357,7 +346,7 @@ def run_pack_jobs(jobs: list[dict[str, Any]], *, address: str | None, progress: 
     def record_run() -> None:
         if not hashed:
             hashed.extend(hash_inputs())
-        _write_atomic(out / GROUPS / RUN_RECORD, json.dumps({"run": run, "inputs": hashed}).encode("utf-8"))
+        write_atomic(out / GROUPS / RUN_RECORD, json.dumps({"run": run, "inputs": hashed}).encode("utf-8"))
 
     results: dict[int, dict[str, Any]] = dict(done)
     if todo:
@@ -416,7 +405,7 @@ def _run_on_ray(ray, todo: list[dict[str, Any]], *, address: str | None, progres
         hasher = threading.Thread(target=hash_and_record, name="patchloom-hash-inputs", daemon=True)
         hasher.start()
         stop = threading.Event()
-        with _bar(progress, desc="pack (ray)", unit=" img") as bar:
+        with progress_bar(progress, desc="pack (ray)", unit=" img") as bar:
             bar.set_postfix_str(line())
 
             def poll() -> None:

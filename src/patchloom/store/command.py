@@ -1,0 +1,127 @@
+"""The `patchloom pack` and `patchloom verify` commands."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+from typing import Any
+
+from ..errors import PatchloomError
+from ..recipe import Recipe
+from .verify import verify_dir
+from .writer import ENGINES, pack_to_dir
+
+__all__ = ["add_store_commands", "cmd_pack", "cmd_verify"]
+
+
+def cmd_pack(args: argparse.Namespace) -> int:
+    """`patchloom pack RECIPE --out DIR`: exit 0 on success, 2 on usage, recipe or input errors."""
+    started = time.perf_counter()
+    shards = args.shards
+    try:
+        if args.recipe == "demo" and not Path(args.recipe).exists():
+            from ..demo.data import demo_shard_pattern
+            from ..demo.recipe import DEMO_RECIPE
+
+            recipe = Recipe.from_dict(DEMO_RECIPE, origin="built-in demo recipe")
+            shards = shards or demo_shard_pattern("patchloom-demo")
+        else:
+            recipe = Recipe.from_file(args.recipe)
+        man = pack_to_dir(recipe, args.out, shards=shards, workers=args.workers, epoch=args.epoch,
+                          progress=not args.no_progress, allow_shell=args.allow_shell,
+                          max_batches_per_shard=args.max_batches_per_shard, overwrite=args.overwrite,
+                          engine=args.engine, address=args.address, resume=args.resume)
+    except PatchloomError as err:
+        print(f"patchloom: error: {err}", file=sys.stderr)
+        return 2
+    t = man["totals"]
+    led = man["ledger"]
+    failed = _failed_inputs(led, [i["path"] for i in man["inputs"]])
+    for line in failed.values():
+        print(f"patchloom: warning: input shard {line}; its samples are not in the pack", file=sys.stderr)
+    if failed:
+        print(f"patchloom: warning: {len(failed)} of {len(man['inputs'])} input shards failed (under "
+              "source.max_skip_ratio, so the pack went on); manifest.json lists them under ledger.shard_errors",
+              file=sys.stderr)
+    print(f"packed {args.out}  (recipe {man['fingerprint'][:12]}, epoch {man['epoch']}, {man['workers']} worker(s))")
+    print(f"  shards written   {len(man['shards'])}")
+    print(f"  batches          {t['batches']}")
+    print(f"  images           {t['images']}  (read {led.get('read')}, skipped {led.get('skipped')})")
+    if failed:
+        print(f"  inputs failed    {len(failed)} of {len(man['inputs'])}")
+    print(f"  tokens           {t['tokens']}")
+    print(f"  padding          {100 * t['padding_fraction']:.1f} %")
+    print(f"  seconds          {time.perf_counter() - started:.2f}")
+    return 0
+
+
+def _failed_inputs(ledger: dict[str, Any], inputs: list[str]) -> dict[str, str]:
+    """Input shard -> 'url: reason' for each one that failed (a shard several workers read is named once)."""
+    out: dict[str, str] = {}
+    for line in ledger.get("shard_errors") or []:
+        line = str(line)
+        url = next((u for u in inputs if line.startswith(u + ": ")), line.split(": ", 1)[0])
+        out.setdefault(url, line)
+    return out
+
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    """`patchloom verify DIR`: exit 0 when everything matches, 1 on a mismatch, 2 on usage errors."""
+    started = time.perf_counter()
+    try:
+        res = verify_dir(args.dir, progress=not args.no_progress, allow_shell=args.allow_shell, shards=args.shards)
+    except PatchloomError as err:
+        print(f"patchloom: error: {err}", file=sys.stderr)
+        return 2
+    seconds = time.perf_counter() - started
+    if res.ok:
+        print(f"OK: {args.dir}: inputs unchanged; {res.batches} batches match the manifest, stored and re-run "
+              f"({seconds:.2f} s)")
+    else:
+        print(f"MISMATCH: {args.dir}: {res.messages[0]}")
+        for msg in res.messages[1:]:
+            print(f"  {msg}")
+    for note in res.notes:
+        print(f"  note: {note}")
+    return 0 if res.ok else 1
+
+
+def add_store_commands(subparsers) -> None:
+    """Add `pack` and `verify` to the `patchloom` command's subparsers."""
+    pack = subparsers.add_parser("pack", help="run a recipe once and write its packed batches as tar shards")
+    pack.add_argument("recipe", help="recipe YAML file, or `demo` for the built-in demo recipe")
+    pack.add_argument("--out", required=True, help="output folder (must be empty unless --overwrite)")
+    pack.add_argument("--shards", help="shard spec overriding the recipe's source.shards")
+    pack.add_argument("--workers", type=int, default=1,
+                      help="worker groups: processes (local) or Ray tasks (ray); the output depends on this "
+                           "number, not on the engine (default: %(default)s)")
+    pack.add_argument("--epoch", type=int, default=0)
+    pack.add_argument("--max-batches-per-shard", type=int, default=64, help="(default: %(default)s)")
+    pack.add_argument("--engine", choices=list(ENGINES), default="local",
+                      help="where the worker groups run: local processes, or tasks on a Ray cluster (needs "
+                           "pip install 'patchloom[ray]'); same output either way (default: %(default)s)")
+    pack.add_argument("--address", default=None,
+                      help="with --engine ray: the Ray cluster to use (`auto`, or HOST:PORT of the head node); "
+                           "default: $RAY_ADDRESS if set, else start Ray on this machine with all its CPUs")
+    pack.add_argument("--overwrite", action="store_true",
+                      help="replace a previous pack in --out (removes only pack's own files; refuses a folder "
+                           "that holds others)")
+    pack.add_argument("--resume", action="store_true",
+                      help="with --engine ray: continue an interrupted pack in --out, keeping the groups it "
+                           "finished (same recipe, inputs, --workers, --epoch and --max-batches-per-shard)")
+    pack.add_argument("--allow-shell", action="store_true",
+                      help="allow pipe: shard URLs, which run shell commands (only for shard lists you wrote)")
+    pack.add_argument("--no-progress", action="store_true", help="no progress bar")
+    pack.set_defaults(func=cmd_pack)
+
+    verify = subparsers.add_parser("verify", help="check a packed folder against its inputs and a re-run")
+    verify.add_argument("dir", help="packed folder (holds manifest.json)")
+    verify.add_argument("--shards", default=None,
+                        help="shard spec naming the inputs (default: the spec recorded when packing); only "
+                             "inputs both this spec and the manifest name are read")
+    verify.add_argument("--allow-shell", action="store_true",
+                        help="allow pipe: input shard URLs (they run commands: only for folders you packed)")
+    verify.add_argument("--no-progress", action="store_true", help="no progress bar")
+    verify.set_defaults(func=cmd_verify)
