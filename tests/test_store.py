@@ -375,3 +375,17 @@ def test_cmd_pack_summary_refusal_and_overwrite(inputs, tmp_path, capsys):
     assert _cli([*argv, "--overwrite"]) == 0
     assert _cli(["pack", str(tmp_path / "nope.yaml"), "--out", str(tmp_path / "o2"), "--no-progress"]) == 2
     assert cmd_verify(_parser().parse_args(["verify", str(out), "--no-progress"])) == 0
+
+
+def test_a_folder_packed_under_the_old_key_names_still_reads_and_verifies(packed1, tmp_path):
+    """Folders packed before the key renames record `packing.buffer` etc.; their fingerprint is
+    unchanged, so they still read and verify."""
+    old = tmp_path / "old"
+    shutil.copytree(packed1, old)
+    man = json.loads((old / "manifest.json").read_text())
+    packing = man["recipe"]["packing"]
+    packing["buffer"] = packing.pop("lookahead")
+    (old / "manifest.json").write_text(json.dumps(man, indent=2, sort_keys=True))
+    assert PackedReader(old).recipe.packing.lookahead == packing["buffer"]
+    assert len(list(read_packed(old, shuffle=False))) == len(list(read_packed(packed1, shuffle=False)))
+    assert verify_dir(old, progress=False).ok

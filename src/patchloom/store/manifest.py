@@ -17,7 +17,7 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from ..recipe import MAX_SEED
+from ..recipe import MAX_SEED, current_names
 from .format import (
     FORMAT,
     FORMAT_VERSION,
@@ -109,6 +109,8 @@ def load_manifest(out_dir: str | Path) -> dict[str, Any]:
         if name not in man:
             raise StoreError(f"{path}: manifest lacks {name!r}")
     check_manifest(man, path)
+    # Folders packed before the recipe keys were renamed record the old names; same fingerprint.
+    man["recipe"] = current_names(man["recipe"])
     return man
 
 
