@@ -30,19 +30,22 @@ def _scene() -> np.ndarray:
     return img
 
 
-def _png_with_orientation(orientation: int) -> bytes:
+def _png_with_orientation(orientation: int, fmt: str = "PNG") -> bytes:
     img = Image.fromarray(_scene())
     exif = Image.Exif()
     exif[0x0112] = orientation
     buf = io.BytesIO()
-    img.save(buf, format="PNG", exif=exif.tobytes())
+    img.save(buf, format=fmt, exif=exif.tobytes())
     return buf.getvalue()
 
 
+@pytest.mark.parametrize("fmt", ["PNG", "JPEG", "TIFF", "WEBP"])
 @pytest.mark.parametrize("orientation", range(1, 9))
-def test_pil_entry_point_applies_exif_orientation_like_the_shard_path(orientation):
-    data = _png_with_orientation(orientation)
-    from_shard = process_record(Record("k", "mem.tar", 0, {"png": data}), RECIPE, 0)
+def test_pil_entry_point_applies_exif_orientation_like_the_shard_path(orientation, fmt):
+    """TIFF matters: Pillow turns a TIFF itself on load, so the tag must not be applied twice."""
+    data = _png_with_orientation(orientation, fmt)
+    ext = {"PNG": "png", "JPEG": "jpg", "TIFF": "tif", "WEBP": "webp"}[fmt]
+    from_shard = process_record(Record("k", "mem.tar", 0, {ext: data}), RECIPE, 0)
     from_pil = image_to_patches(Image.open(io.BytesIO(data)), RECIPE, key="k")
     assert from_pil.grid == from_shard.grid
     np.testing.assert_array_equal(from_pil.patches, from_shard.patches)

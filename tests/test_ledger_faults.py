@@ -280,6 +280,23 @@ def test_resume_refuses_a_shard_rewritten_in_place(four):
         Pipeline(recipe(), four).load_state_dict(state)
 
 
+def test_resume_refuses_shards_swapped_with_equal_size_and_time(tmp_path):
+    """Shards copied with their times kept (`cp -p`, unpacked from one archive) and then swapped:
+    size and mtime agree, the bytes do not."""
+    a, b = good_shard(tmp_path / "a.tar", 5, seed=1), good_shard(tmp_path / "b.tar", 5, seed=2)
+    assert os.path.getsize(a) == os.path.getsize(b)
+    for path in (a, b):
+        os.utime(path, ns=(1_700_000_000_000_000_000, 1_700_000_000_000_000_000))
+    state = _state_after_one_batch(recipe(), [a, b])
+    os.rename(a, tmp_path / "tmp.tar")
+    os.rename(b, a)
+    os.rename(tmp_path / "tmp.tar", b)
+    for path in (a, b):
+        os.utime(path, ns=(1_700_000_000_000_000_000, 1_700_000_000_000_000_000))
+    with pytest.raises(ValueError, match=r"a.tar holds other bytes"):
+        Pipeline(recipe(), [a, b]).load_state_dict(state)
+
+
 def test_an_old_state_version_is_a_clear_error(four):
     state = _state_after_one_batch(recipe(), four)
     with pytest.raises(ValueError, match="older patchloom .*start the epoch afresh"):

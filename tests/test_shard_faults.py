@@ -10,6 +10,7 @@ from __future__ import annotations
 import functools
 import http.server
 import io
+import hashlib
 import json
 import os
 import pickle
@@ -251,6 +252,19 @@ def test_pipe_command_exit_status_is_checked(tmp_path):
     assert [(r.key, r.error is None) for r in recs] == [("k0000", False)]
 
 
+def test_a_silent_pipe_command_is_a_shard_error_not_a_hang(tmp_path, monkeypatch):
+    """A command that stops sending (a stalled download) fails the shard after the stall limit."""
+    import patchloom.read.tar as tar_mod
+
+    monkeypatch.setattr(tar_mod, "PIPE_STALL_TIMEOUT_S", 0.3)
+    path = write_tar(tmp_path / "a.tar", samples(2))
+    url = f"pipe:head -c 600 {path}; sleep 30"  # half a header, then silence
+    recs, err = read_all(url, allow_shell=True)
+    assert isinstance(err, ShardError) and "sent nothing for" in str(err) and url in str(err)
+    ok, err = read_all(f"pipe:sleep 0.05; cat {path}", allow_shell=True)  # slow but alive is fine
+    assert err is None and len(ok) == 2
+
+
 def test_shard_errors_go_to_the_callback_or_raise_naming_the_shard(tmp_path):
     bad = write_tar(tmp_path / "bad.tar", samples(3))
     bad.write_bytes(bad.read_bytes()[: header_offsets(bad)["k0002.jpg"]])
@@ -426,9 +440,13 @@ def test_shard_identity_and_changes(tmp_path):
     b = write_tar(tmp_path / "b.tar", samples(3))
     ida = shard_identity(str(a))
     st = os.stat(a)
-    assert ida == {"url": str(a), "size": st.st_size, "mtime": st.st_mtime}
-    assert shard_identity("https://h.invalid/x.tar") == {"url": "https://h.invalid/x.tar", "size": None, "mtime": None}
-    assert shard_identity("pipe:cat x") == {"url": "pipe:cat x", "size": None, "mtime": None}
+    data = a.read_bytes()
+    assert len(data) < 64 * 1024  # a small shard: the probe is the hash of the whole file
+    probe = hashlib.blake2b(data, digest_size=12).hexdigest()
+    assert ida == {"url": str(a), "size": st.st_size, "mtime": st.st_mtime, "probe": probe}
+    none = {"size": None, "mtime": None, "probe": None}
+    assert shard_identity("https://h.invalid/x.tar") == {"url": "https://h.invalid/x.tar", **none}
+    assert shard_identity("pipe:cat x") == {"url": "pipe:cat x", **none}
 
     saved = json.loads(json.dumps([shard_identity(str(a)), shard_identity(str(b))]))  # as a state stores it
     assert describe_identity_change(saved, [shard_identity(str(a)), shard_identity(str(b))]) is None

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 import time
 from dataclasses import dataclass, field
 
@@ -62,6 +63,8 @@ def format_table(stats: RunStats, ledger: dict, *, title: str = "patchloom run")
         ("images read", f"{ledger['read']}"),
         ("images emitted", f"{ledger['emitted']}"),
         ("images skipped", f"{ledger['skipped']}"),
+        *([("images in buffer", f"{ledger['in_buffer']} (read, not yet packed: the run stopped early)")]
+          if ledger.get("in_buffer") else []),
         ("shards failed", f"{failed}" + (f" of {opened}" if opened else "")),
         ("batches", f"{s['batches']}"),
         ("tokens / image", f"mean {s['tokens_mean']:.1f}  p5 {s['tokens_p5']:.0f}  p95 {s['tokens_p95']:.0f}"),
@@ -80,4 +83,13 @@ def format_table(stats: RunStats, ledger: dict, *, title: str = "patchloom run")
         lines.append(f"  {'shard error':<{width}}  {err}")
     if len(errors) > SHARD_ERRORS_SHOWN:
         lines.append(f"  {'':<{width}}  and {len(errors) - SHARD_ERRORS_SHOWN} more (--ledger FILE lists them all)")
-    return "\n".join(lines)
+    return "\n".join(printable(line) for line in lines)
+
+
+_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f]")
+
+
+def printable(text: str) -> str:
+    """Control characters (sample keys and shard names come from untrusted tars) escaped, so a
+    key cannot move the cursor, retitle the terminal or clear the screen when printed."""
+    return _CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}", text)

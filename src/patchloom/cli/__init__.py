@@ -1,5 +1,1 @@
-"""The `patchloom` command."""
-
-from .main import main
-
-__all__ = ["main"]
+"""The `patchloom` command: one module per command group; the entry point is `patchloom.cli.main:main`."""

@@ -53,6 +53,9 @@ def main(argv: list[str] | None = None) -> int:
             raise
         print(f"patchloom: error: {message}", file=sys.stderr)
         return 2
+    except OSError as err:  # a folder that cannot be written, a file that vanished: say which
+        print(f"patchloom: error: {err}", file=sys.stderr)
+        return 2
     except KeyboardInterrupt:
         print("patchloom: interrupted", file=sys.stderr)
         return 130

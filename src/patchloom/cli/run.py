@@ -13,6 +13,7 @@ from ..pipeline import Pipeline, SampleError, SkipRatioError
 from ..read import SourceError
 from ..recipe import Recipe
 from ..summary import RunStats, format_table
+from .args import UsageError, non_negative, positive, writable_file
 
 __all__ = ["add_run_commands", "cmd_demo", "cmd_run"]
 
@@ -62,6 +63,8 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def cmd_run(args: argparse.Namespace) -> int:
     """Stream a recipe file over its shards (or --shards); optionally write the summary and ledger."""
+    if args.rank >= args.world_size:
+        raise UsageError(f"--rank {args.rank} is not below --world-size {args.world_size}; ranks count from 0")
     recipe = Recipe.from_file(args.recipe)
     stats, ledger = _stream(
         recipe, shards=args.shards, epoch=args.epoch, rank=args.rank, world_size=args.world_size,
@@ -84,12 +87,12 @@ def add_run_commands(subparsers) -> None:
     run = subparsers.add_parser("run", help="stream a recipe over its shards and print a summary")
     run.add_argument("recipe", help="recipe YAML file")
     run.add_argument("--shards", help="shard spec overriding the recipe's source.shards")
-    run.add_argument("--epoch", type=int, default=0)
-    run.add_argument("--rank", type=int, default=0)
-    run.add_argument("--world-size", type=int, default=1)
-    run.add_argument("--max-batches", type=int, help="stop after this many batches")
-    run.add_argument("--json", metavar="FILE", help="also write the summary and ledger as JSON")
-    run.add_argument("--ledger", metavar="FILE",
+    run.add_argument("--epoch", type=non_negative, default=0)
+    run.add_argument("--rank", type=non_negative, default=0)
+    run.add_argument("--world-size", type=positive, default=1)
+    run.add_argument("--max-batches", type=positive, help="stop after this many batches")
+    run.add_argument("--json", metavar="FILE", type=writable_file, help="also write the summary and ledger as JSON")
+    run.add_argument("--ledger", metavar="FILE", type=writable_file,
                      help="write every skipped sample as JSON lines (a quarantine list), then a summary line")
     run.add_argument("--allow-shell", action="store_true",
                      help="allow pipe: shard URLs, which run shell commands (only for shard lists you wrote)")

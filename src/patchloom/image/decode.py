@@ -387,8 +387,10 @@ def upright(img: Image.Image) -> Image.Image:
     """An already opened PIL image in display orientation, by the same EXIF rule the shard path uses.
 
     For images that come in as PIL objects (`image_to_patches`); pixels Pillow already transposed
-    on load (TIFF) are left as they are.
+    on load (TIFF) are left as they are, so the image is loaded first (a TIFF opened but not yet
+    loaded still shows its tag, and Pillow turns it on load).
     """
+    img.load()
     if _pillow_applied_orientation(img):
         return img
     method = _TRANSPOSE.get(_orientation(img))

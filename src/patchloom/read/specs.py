@@ -4,7 +4,9 @@ identity a resume state keeps of each shard to notice that it changed."""
 from __future__ import annotations
 
 import glob
+import hashlib
 import os
+import stat
 from collections.abc import Sequence
 
 import braceexpand
@@ -79,17 +81,32 @@ def _missing_message(path: str, item: str) -> str:
     return text
 
 
+#: Bytes hashed at each end of a local shard for its identity: enough to tell apart two shards of
+#: equal size and time (copied with `cp -p`, unpacked from one archive), cheap for thousands.
+IDENTITY_PROBE_BYTES = 64 * 1024
+
+
 def shard_identity(url: str) -> dict:
     """What a saved state remembers of a shard to notice it changed: its URL, and for a local file
-    its size and modification time (None where unknown: URLs, `pipe:` commands, missing files)."""
-    out: dict = {"url": url, "size": None, "mtime": None}
+    its size, modification time and a hash of its first and last 64 KiB (None where unknown:
+    URLs, `pipe:` commands, missing files)."""
+    out: dict = {"url": url, "size": None, "mtime": None, "probe": None}
     if "://" in url or url.startswith(SHELL_PREFIXES):
         return out
+    path = os.path.expanduser(url.removeprefix("file:"))
     try:
-        st = os.stat(os.path.expanduser(url.removeprefix("file:")))
+        st = os.stat(path)
+        if not stat.S_ISREG(st.st_mode):
+            return out
+        digest = hashlib.blake2b(digest_size=12)
+        with open(path, "rb") as f:
+            digest.update(f.read(IDENTITY_PROBE_BYTES))
+            if st.st_size > IDENTITY_PROBE_BYTES:
+                f.seek(max(IDENTITY_PROBE_BYTES, st.st_size - IDENTITY_PROBE_BYTES))
+                digest.update(f.read(IDENTITY_PROBE_BYTES))
     except OSError:
         return out
-    out.update(size=int(st.st_size), mtime=float(st.st_mtime))
+    out.update(size=int(st.st_size), mtime=float(st.st_mtime), probe=digest.hexdigest())
     return out
 
 
@@ -111,11 +128,14 @@ def describe_identity_change(saved: Sequence[dict], now: Sequence[dict]) -> str 
         return (f"the shard list {kind} since the state was saved (position {i}: {then_at} then, "
                 f"{now_at} now)")
     for a, b in zip(saved, now):
-        for name in ("size", "mtime"):
+        for name in ("size", "mtime", "probe"):
             old, new = a.get(name), b.get(name)
             if old == new:
                 continue
             if new is None:
                 return f"shard {a.get('url')} can no longer be read ({name} {old} when the state was saved)"
+            if name == "probe":
+                return (f"shard {a.get('url')} holds other bytes than when the state was saved (same size "
+                        "and time: swapped or copied over?)")
             return f"shard {a.get('url')} was rewritten since the state was saved ({name} {old} -> {new})"
     return None

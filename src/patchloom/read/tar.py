@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import os
 import re
+import select
 import subprocess
 import tarfile
 import tempfile
@@ -51,6 +52,7 @@ class Record:
 
 URL_TIMEOUT_S = 60.0  # seconds a stalled HTTP(S) connection may stay silent before the shard fails
 PIPE_EXIT_TIMEOUT_S = 60.0  # seconds a `pipe:` command may take to exit once its output has ended
+PIPE_STALL_TIMEOUT_S = 300.0  # seconds a `pipe:` command may stay silent before the shard fails
 
 
 class _PipeStream:
@@ -62,11 +64,27 @@ class _PipeStream:
         self._stderr = tempfile.TemporaryFile()  # a file, not a pipe: a chatty command cannot block on it
         # The caller allowed shell commands explicitly (allow_shell=True).
         self.proc = subprocess.Popen(self.command, shell=True, stdout=subprocess.PIPE,  # noqa: S602
-                                     stderr=self._stderr)
+                                     stderr=self._stderr, bufsize=0)
+        self._fd = self.proc.stdout.fileno()  # type: ignore[union-attr]
         self.closed = False
 
     def read(self, n: int = -1) -> bytes:
-        return self.proc.stdout.read(n)  # type: ignore[union-attr]
+        """Up to n bytes (all with n < 0), fewer only at the end of the output. A command silent for
+        PIPE_STALL_TIMEOUT_S is a shard error, so a hung download cannot stall training forever."""
+        chunks: list[bytes] = []
+        need = n if n >= 0 else None
+        while need is None or need > 0:
+            ready, _, _ = select.select([self._fd], [], [], PIPE_STALL_TIMEOUT_S)
+            if not ready:
+                raise shard_error(self.url, f"the command {self.command!r} sent nothing for "
+                                            f"{PIPE_STALL_TIMEOUT_S:.0f} s")
+            chunk = os.read(self._fd, need if need is not None else 1 << 20)
+            if not chunk:
+                break
+            chunks.append(chunk)
+            if need is not None:
+                need -= len(chunk)
+        return b"".join(chunks)
 
     def seekable(self) -> bool:
         return False

@@ -198,7 +198,15 @@ def _check_duplicates(loader: _RecipeLoader, node: yaml.MappingNode) -> None:
 def load_yaml(path: Path) -> Any:
     """Read one recipe file into plain data; every failure is a RecipeError naming the file.
 
-    At most MAX_RECIPE_BYTES + 1 bytes are read, so a device or a file that grows cannot fill memory."""
+    At most MAX_RECIPE_BYTES + 1 bytes are read, so a device or a file that grows cannot fill memory;
+    a pipe or socket is refused before it is opened, since reading one can wait forever."""
+    try:
+        mode = path.stat().st_mode
+    except OSError as exc:
+        raise RecipeError(f"cannot read recipe {path}: {exc.strerror or exc}") from None
+    if stat.S_ISFIFO(mode) or stat.S_ISSOCK(mode) or stat.S_ISDIR(mode):
+        kind = "a folder" if stat.S_ISDIR(mode) else "a pipe or socket, which could wait forever"
+        raise RecipeError(f"cannot read recipe {path}: it is {kind}; give a recipe file")
     try:
         with path.open("rb") as f:
             raw = f.read(MAX_RECIPE_BYTES + 1)

@@ -5,6 +5,8 @@ from __future__ import annotations
 import argparse
 import sys
 
+from ..cli.args import non_negative, positive
+
 
 def add_inspect_command(subparsers) -> argparse.ArgumentParser:
     """Add `inspect` to the `patchloom` command's subparsers."""
@@ -16,11 +18,11 @@ def add_inspect_command(subparsers) -> argparse.ArgumentParser:
     )
     p.add_argument("recipe", help="recipe YAML file")
     p.add_argument("--shards", help="shard spec overriding the recipe's source.shards")
-    p.add_argument("--samples", type=int, default=12, help="images to draw stage by stage (default: %(default)s)")
-    p.add_argument("--epoch", type=int, default=0)
+    p.add_argument("--samples", type=non_negative, default=12, help="images to draw stage by stage (default: %(default)s)")
+    p.add_argument("--epoch", type=non_negative, default=0)
     p.add_argument("--out", default="patchloom-report", help="report folder (default: %(default)s)")
-    p.add_argument("--seed", type=int, help="seed of the sample choice (default: the recipe's seed)")
-    p.add_argument("--max-images", type=int, help="stop reading after this many records (default: all)")
+    p.add_argument("--seed", type=non_negative, help="seed of the sample choice (default: the recipe's seed)")
+    p.add_argument("--max-images", type=positive, help="stop reading after this many records (default: all)")
     p.add_argument("--screenshot", metavar="PNG", help="also save a screenshot of the page (needs Chromium)")
     p.add_argument("--fail-on-flags", action="store_true", help="exit with status 1 when anything is flagged")
     p.add_argument("--allow-shell", action="store_true",

@@ -12,6 +12,7 @@ from ..errors import PatchloomError
 from ..recipe import Recipe
 from .verify import verify_dir
 from .writer import ENGINES, pack_to_dir
+from ..cli.args import non_negative, positive
 
 __all__ = ["add_store_commands", "cmd_pack", "cmd_verify"]
 
@@ -94,11 +95,11 @@ def add_store_commands(subparsers) -> None:
     pack.add_argument("recipe", help="recipe YAML file, or `demo` for the built-in demo recipe")
     pack.add_argument("--out", required=True, help="output folder (must be empty unless --overwrite)")
     pack.add_argument("--shards", help="shard spec overriding the recipe's source.shards")
-    pack.add_argument("--workers", type=int, default=1,
+    pack.add_argument("--workers", type=positive, default=1,
                       help="worker groups: processes (local) or Ray tasks (ray); the output depends on this "
                            "number, not on the engine (default: %(default)s)")
-    pack.add_argument("--epoch", type=int, default=0)
-    pack.add_argument("--max-batches-per-shard", type=int, default=64, help="(default: %(default)s)")
+    pack.add_argument("--epoch", type=non_negative, default=0)
+    pack.add_argument("--max-batches-per-shard", type=positive, default=64, help="(default: %(default)s)")
     pack.add_argument("--engine", choices=list(ENGINES), default="local",
                       help="where the worker groups run: local processes, or tasks on a Ray cluster (needs "
                            "pip install 'patchloom[ray]'); same output either way (default: %(default)s)")
