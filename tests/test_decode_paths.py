@@ -136,14 +136,14 @@ def test_non_srgb_profile_goes_through_pillow_and_srgb_does_not(monkeypatch):
     assert _psnr(fast, slow) >= 35
 
 
-def test_png_and_webp_go_the_normal_way():
+def test_png_takes_libspng_and_webp_pillow():
     img = Image.fromarray(_scene())
-    for fmt in ("PNG", "WEBP"):
+    for fmt, path in (("PNG", "pyspng" if decode_mod.pyspng is not None else "pillow"), ("WEBP", "pillow")):
         buf = io.BytesIO()
         img.save(buf, fmt)
         reset_decode_path_counts()
         open_image(buf.getvalue(), pixel_limit=LIMIT).decode(reduce_to=(40, 30))
-        assert decode_path_counts() == {"pillow": 1}, fmt
+        assert decode_path_counts() == {path: 1}, fmt
 
 
 def test_truncated_jpeg_falls_back_and_pillow_words_the_error():

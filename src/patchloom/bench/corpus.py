@@ -1,5 +1,6 @@
-"""The corpus a benchmark runs on: `photos` (web-sized JPEGs, made in `patchloom-bench/`), `demo`
-(the demo archive, made in `patchloom-demo/`), or a recipe file over its own shards.
+"""The corpus a benchmark runs on: `photos` (web-sized JPEGs, made in `patchloom-bench/`),
+`photos-small` (real photos at everyday sizes, a fifth PNG, made in `patchloom-bench-small/`),
+`demo` (the demo archive, made in `patchloom-demo/`), or a recipe file over its own shards.
 
 Each is made on first use and reused after; `--shards` points any of them at other shards.
 """
@@ -16,11 +17,13 @@ from ..demo.data import demo_shard_pattern, make_demo_shards
 from ..demo.recipe import DEMO_RECIPE
 from ..recipe import Recipe
 from .photos import PHOTO_RECIPE, make_photo_shards, photo_shard_pattern
+from .small_photos import make_small_photo_shards, small_photo_shard_pattern
 
 __all__ = ["CORPORA", "Corpus", "ensure_demo_shards", "load_corpus"]
 
 #: Built-in corpus name -> the folder its shards are made in by default.
-CORPORA: dict[str, str] = {"photos": "patchloom-bench", "demo": "patchloom-demo"}
+CORPORA: dict[str, str] = {"photos": "patchloom-bench", "photos-small": "patchloom-bench-small",
+                           "demo": "patchloom-demo"}
 
 _DEMO_NAME = re.compile(r"demo-(\d{6})\.tar")
 
@@ -37,7 +40,7 @@ class Corpus:
 
 def load_corpus(corpus: str, *, shards: str | None = None, data: str | Path | None = None,
                 make: bool = True, progress: bool = True) -> Corpus:
-    """The recipe and shards of `corpus` (`photos`, `demo` or a recipe YAML path).
+    """The recipe and shards of `corpus` (`photos`, `photos-small`, `demo` or a recipe YAML path).
 
     `shards` overrides the corpus's shards; `data` is where the built-in corpora are made (default:
     CORPORA). With `make`, absent corpus shards are written first, as are demo shards a recipe's
@@ -51,6 +54,12 @@ def load_corpus(corpus: str, *, shards: str | None = None, data: str | Path | No
             if make:
                 make_photo_shards(folder, progress=progress)
             shards = photo_shard_pattern(folder)
+    elif corpus == "photos-small":
+        recipe = Recipe.from_dict(PHOTO_RECIPE, origin="built-in benchmark corpus `photos-small`")
+        if shards is None:
+            if make:
+                make_small_photo_shards(folder, progress=progress)
+            shards = small_photo_shard_pattern(folder)
     elif corpus == "demo":
         recipe = Recipe.from_dict(DEMO_RECIPE, origin="built-in demo recipe")
         shards = shards if shards is not None else demo_shard_pattern(folder, shards=4)

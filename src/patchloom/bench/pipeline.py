@@ -1,13 +1,21 @@
-"""Benchmark: the pipeline beside a plain square-resize baseline, in one process, over the same shards.
+"""Benchmark: the pipeline beside a plain square-resize baseline and its own kernels, in one process,
+over the same shards.
 
 The baseline is what most image loaders do today: read the same tar records (patchloom.read, in
 shard order, no shuffle), decode every image fully with Pillow and `convert("RGB")`, squash it to a
-square of `patch_size * isqrt(max_tokens)` pixels with the recipe's resample filter, patchify it with
-numpy and stack fixed-count batches. The candidate is a full iteration of `Pipeline(recipe, shards)`.
+square of `patch_size * isqrt(max_tokens)` pixels with Pillow's **bilinear** filter, patchify it
+with numpy and stack fixed-count batches. A second baseline line does the same with bicubic.
 
-Runs are interleaved (baseline, pipeline, baseline, pipeline, ...) so that slow phases of a noisy
-machine hit both sides alike, and each side reports the median over its runs. No timing is asserted
-anywhere: the numbers are for people to read.
+"Kernels alone" is the pipeline's own decode, resize and patchify calls for the same images, in a
+bare loop over bytes already in memory: the decoder and DCT scale the pipeline picks (libjpeg-turbo,
+libspng or Pillow), the recipe's resample filter to the same size plan, and patchify. Its plans and
+decoder choices are made beforehand, untimed, so pipeline / kernels is what everything around the
+kernels costs (reading, headers, planning, seeding, packing, the ledger).
+
+The candidate is a full iteration of `Pipeline(recipe, shards)`. Runs are interleaved (baseline,
+bicubic baseline, kernels, pipeline, baseline, ...) so that slow phases of a noisy machine hit
+every side alike; each side reports the median over its runs, and each ratio is also given per
+run (`ratio_runs`), from sides timed back to back. No timing is asserted anywhere.
 """
 
 from __future__ import annotations
@@ -26,13 +34,14 @@ import numpy as np
 from PIL import Image
 from tqdm import tqdm
 
-from ..packing.packer import Packer
+from ..image.chain import SampleError, find_image, parse_label, plan_for, process_record, reduce_hint
+from ..image.decode import DecodedImage, FastDecode, fast_rgb, open_image, orient_pixels
 from ..image.patches import normalize, patchify
+from ..image.sizing import RESAMPLE_FILTERS, SizePlan, resize_to_plan
+from ..packing.packer import Packer
 from ..pipeline import Pipeline
-from ..image.chain import SampleError, parse_label, process_record
-from ..recipe import Recipe
-from ..image.sizing import RESAMPLE_FILTERS
 from ..read import ShardTask, expand_shards, read_tasks, shard_order
+from ..recipe import Recipe
 
 try:  # not on Windows; the memory column is then left empty
     import resource
@@ -40,15 +49,23 @@ except ImportError:  # pragma: no cover - platform dependent
     resource = None  # type: ignore[assignment]
 
 __all__ = [
+    "KernelJob",
+    "RATIOS",
     "RunResult",
     "SquareBaseline",
     "baseline_batch_images",
     "baseline_side",
     "format_bench",
+    "format_corpus_ratios",
+    "kernel_jobs",
+    "kernel_patches",
+    "ratio_range",
     "run_bench",
     "square_patches",
     "stage_profile",
     "time_baseline",
+    "time_bicubic_baseline",
+    "time_kernels",
     "time_pipeline",
     "warm_cache",
 ]
@@ -57,7 +74,11 @@ __all__ = [
 STAGES = ("read", "header", "sizing", "decode", "resize", "augment", "patches", "drop", "patch_ops", "output",
           "pack")
 
-SIDES = ("baseline", "pipeline")
+SIDES = ("baseline", "baseline_bicubic", "kernels", "pipeline")
+
+#: The baseline's resample filter (what a plain loader uses), and the second baseline line's.
+BASELINE_RESAMPLE = "bilinear"
+BICUBIC_RESAMPLE = "bicubic"
 
 
 # --------------------------------------------------------------------------------------------
@@ -82,7 +103,7 @@ def baseline_batch_images(recipe: Recipe) -> int:
     return max(1, p.rows * p.seq_len // tokens)
 
 
-def square_patches(data: bytes, *, side: int, patch_size: int, resample: str = "bicubic") -> np.ndarray:
+def square_patches(data: bytes, *, side: int, patch_size: int, resample: str = BASELINE_RESAMPLE) -> np.ndarray:
     """Encoded bytes -> [T, patch*patch*3] uint8: full Pillow decode, RGB, square resize, patchify."""
     with Image.open(io.BytesIO(data)) as im:
         rgb = im.convert("RGB")
@@ -99,13 +120,18 @@ class SquareBaseline:
     Every batch has the same n = baseline_batch_images(recipe); the last one is zero-padded (labels
     -1) so shapes stay static, and that padding counts as padding. Samples that fail (no image
     member, undecodable bytes) are counted in `skipped`, as a plain try/except loader would.
-    Normalisation to the recipe's output dtype is applied once per stacked batch.
+    Normalisation to the recipe's output dtype is applied once per stacked batch. `resample` is a
+    Pillow filter name (bilinear by default, as plain loaders use).
     """
 
-    def __init__(self, recipe: Recipe, shards: list[str], *, max_images: int | None = None) -> None:
+    def __init__(self, recipe: Recipe, shards: list[str], *, max_images: int | None = None,
+                 resample: str = BASELINE_RESAMPLE) -> None:
+        if not isinstance(RESAMPLE_FILTERS.get(resample), Image.Resampling):
+            raise ValueError(f"the square baseline uses a Pillow filter (got {resample!r})")
         self.recipe = recipe
         self.shards = shards
         self.max_images = max_images
+        self.resample = resample
         self.side = baseline_side(recipe)
         self.batch_images = baseline_batch_images(recipe)
         self.images = 0
@@ -127,7 +153,7 @@ class SquareBaseline:
             try:
                 label = parse_label(rec, r.source.label_key)
                 patches = square_patches(data, side=self.side, patch_size=r.sizing.patch_size,
-                                         resample=r.sizing.resample)
+                                         resample=self.resample)
             except Exception:  # the plain loader's blanket skip
                 self.skipped += 1
                 continue
@@ -155,6 +181,58 @@ class SquareBaseline:
                 return
         if fill:
             yield normalize(buf.reshape(n * t, d), out.mean, out.std, out.dtype).reshape(n, t, d), labels.copy()
+
+
+# --------------------------------------------------------------------------------------------
+# Kernels alone: the pipeline's decode, resize and patchify calls in a bare loop
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(slots=True)
+class KernelJob:
+    """One image's kernel calls, decided beforehand (untimed) as the pipeline decides them."""
+
+    data: bytes
+    plan: SizePlan
+    call: FastDecode | None  # the fast decoder call, or None: Pillow (open and decode, as the pipeline does)
+    orientation: int
+    hint: tuple[int, int] | None  # the reduce_to the pipeline passes (for the Pillow path)
+
+
+def kernel_jobs(recipe: Recipe, urls: list[str], max_images: int | None = None) -> list[KernelJob]:
+    """The images of `urls` in shard order with their size plans and decoder calls (samples the pipeline
+    would skip are left out). Reads every record; nothing here is timed."""
+    r = recipe
+    order = shard_order(urls, seed=r.seed, epoch=0, shuffle=r.source.shuffle_shards)
+    jobs: list[KernelJob] = []
+    for rec in read_tasks([ShardTask(u) for u in order], allow_shell=False):
+        if max_images is not None and len(jobs) >= max_images:
+            break
+        try:
+            _ext, data = find_image(rec, r.source.image_keys)
+            opened = open_image(data, pixel_limit=r.decode.pixel_limit, memory_limit=r.decode.memory_limit)
+            plan = plan_for(opened.height, opened.width, r, seed=r.seed, epoch=0, key=rec.key)
+            hint = reduce_hint(opened, plan) if r.decode.reduced_jpeg else None
+            call = opened.fast_decode(opened.decode_scale(hint))
+            opened.decode(background=r.decode.background, reduce_to=hint)  # the pipeline would not skip it
+        except Exception:  # noqa: BLE001 - what the pipeline skips, the kernels leave out
+            continue
+        jobs.append(KernelJob(data, plan, call, opened.orientation, hint))
+    return jobs
+
+
+def kernel_patches(job: KernelJob, recipe: Recipe) -> np.ndarray:
+    """One image through the pipeline's kernels: decode (same decoder and scale), resize (the recipe's
+    filter, same plan), patchify."""
+    dec = recipe.decode
+    pixels = fast_rgb(job.call, job.data, dec.background) if job.call is not None else None
+    if pixels is not None:
+        image: Any = DecodedImage(orient_pixels(pixels, job.orientation))
+    else:
+        image = open_image(job.data, pixel_limit=dec.pixel_limit, memory_limit=dec.memory_limit).decode(
+            background=dec.background, reduce_to=job.hint)
+    out = resize_to_plan(image, job.plan, resample=recipe.sizing.resample, background=dec.background)
+    return patchify(np.asarray(out), job.plan.patch_size)
 
 
 # --------------------------------------------------------------------------------------------
@@ -222,9 +300,10 @@ def _peak_rss_mib() -> float | None:
     return peak / (1 << 20) if sys.platform == "darwin" else peak / 1024  # bytes on macOS, KiB elsewhere
 
 
-def time_baseline(recipe: Recipe, urls: list[str], max_images: int | None, bar: tqdm) -> RunResult:
+def time_baseline(recipe: Recipe, urls: list[str], max_images: int | None, bar: tqdm, *,
+                  resample: str = BASELINE_RESAMPLE) -> RunResult:
     """One timed pass of the square-resize baseline over `urls` (stops after `max_images`)."""
-    base = SquareBaseline(recipe, urls, max_images=max_images)
+    base = SquareBaseline(recipe, urls, max_images=max_images, resample=resample)
     res = RunResult("baseline")
     t0, c0 = time.perf_counter(), time.process_time()
     before = 0
@@ -238,6 +317,28 @@ def time_baseline(recipe: Recipe, urls: list[str], max_images: int | None, bar: 
     res.seconds, res.cpu_seconds = time.perf_counter() - t0, time.process_time() - c0
     res.images, res.skipped = base.images, base.skipped
     res.tokens = base.images * base.tokens_per_image  # every image fills its square; padding is batch tail
+    return res
+
+
+def time_bicubic_baseline(recipe: Recipe, urls: list[str], max_images: int | None, bar: tqdm) -> RunResult:
+    """One timed pass of the square baseline with Pillow's bicubic filter instead of bilinear."""
+    res = time_baseline(recipe, urls, max_images, bar, resample=BICUBIC_RESAMPLE)
+    res.side = "baseline_bicubic"
+    return res
+
+
+def time_kernels(recipe: Recipe, jobs: list[KernelJob], max_images: int | None, bar: tqdm) -> RunResult:
+    """One timed pass of the kernels alone over `jobs` (bytes in memory, plans made): no batches."""
+    res = RunResult("kernels")
+    todo = jobs if max_images is None else jobs[:max_images]
+    t0, c0 = time.perf_counter(), time.process_time()
+    for job in todo:
+        kernel_patches(job, recipe)
+        res.images += 1
+        res.tokens += job.plan.tokens
+        bar.update(1)
+    res.seconds, res.cpu_seconds = time.perf_counter() - t0, time.process_time() - c0
+    res.slots = res.tokens
     return res
 
 
@@ -328,13 +429,15 @@ def _ratio(num: float, den: float) -> float:
 
 def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_images: int | None = None,
               repeats: int = 3, progress: bool = False, quality_check: bool = True) -> dict:
-    """Time the baseline and the pipeline `repeats` times each, interleaved; return a JSON-able dict.
+    """Time the bilinear baseline, the bicubic baseline, the kernels alone and the pipeline `repeats`
+    times each, interleaved; return a JSON-able dict.
 
     `shards` overrides the recipe's; `max_images` stops each run after the batch that reaches it.
     After the timed runs, one untimed pass measures per-stage microseconds (`stages`) and, with
     `quality_check`, the PSNR of the pipeline's pixels against full decode + Lanczos (`quality`).
-    The dict holds each side's runs and medians and `ratio` (pipeline / baseline) for images/s and
-    useful (non-padding) tokens/s.
+    The dict holds each side's runs and medians, `ratio` from the medians (pipeline / baseline for
+    images/s, useful (non-padding) tokens/s and images per CPU second; pipeline / bicubic baseline;
+    kernels / baseline; pipeline / kernels) and `ratio_runs`, the images/s ratios of each repeat.
     """
     if repeats < 1:
         raise ValueError(f"repeats must be >= 1 (got {repeats})")
@@ -343,8 +446,10 @@ def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_imag
     src = recipe.source
     urls = expand_shards(shards if shards is not None else src.shards, allow_shell=False)
     warm_cache(recipe, urls)
+    jobs = kernel_jobs(recipe, urls, max_images)
     runs: dict[str, list[RunResult]] = {side: [] for side in SIDES}
-    timers = {"baseline": time_baseline, "pipeline": time_pipeline}
+    timers = {"baseline": time_baseline, "baseline_bicubic": time_bicubic_baseline,
+              "kernels": lambda r, u, m, bar: time_kernels(r, jobs, m, bar), "pipeline": time_pipeline}
     for i in range(repeats):
         for side in SIDES:
             gc.collect()
@@ -358,10 +463,12 @@ def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_imag
     from .quality import decode_quality
 
     quality = decode_quality(recipe, shards=urls, max_images=max_images or 300) if quality_check else None
+    ips = {side: med[side]["images_per_s"] for side in SIDES}
     return {
         "stages": stages,
         "quality": quality,
         "recipe": recipe.fingerprint(),
+        "resample": recipe.sizing.resample,
         "shards": len(urls),
         "repeats": repeats,
         "max_images": max_images,
@@ -369,25 +476,53 @@ def run_bench(recipe: Recipe, *, shards: str | list[str] | None = None, max_imag
         "baseline_batch_images": baseline_batch_images(recipe),
         "pipeline_batch": [recipe.packing.rows, recipe.packing.seq_len],
         "output_dtype": recipe.output.dtype,
-        "baseline": {"median": med["baseline"], "runs": [r.to_dict() for r in runs["baseline"]]},
-        "pipeline": {"median": med["pipeline"], "runs": [r.to_dict() for r in runs["pipeline"]]},
+        **{side: {"median": med[side], "runs": [r.to_dict() for r in runs[side]]} for side in SIDES},
         "ratio": {
-            "images_per_s": _ratio(med["pipeline"]["images_per_s"], med["baseline"]["images_per_s"]),
+            "images_per_s": _ratio(ips["pipeline"], ips["baseline"]),
             "useful_tokens_per_s": _ratio(med["pipeline"]["useful_tokens_per_s"],
                                           med["baseline"]["useful_tokens_per_s"]),
             # the same images/s ratio from process CPU time, which a busy machine disturbs less
             "images_per_cpu_s": _ratio(med["pipeline"]["images_per_cpu_s"], med["baseline"]["images_per_cpu_s"]),
+            "vs_bicubic_baseline": _ratio(ips["pipeline"], ips["baseline_bicubic"]),
+            "kernels_vs_baseline": _ratio(ips["kernels"], ips["baseline"]),
+            "pipeline_vs_kernels": _ratio(ips["pipeline"], ips["kernels"]),
+            **{f"{name}_cpu": _ratio(med[a]["images_per_cpu_s"], med[b]["images_per_cpu_s"])
+               for name, (a, b) in RATIOS.items()},
         },
+        "ratio_runs": [_run_ratios({side: runs[side][i] for side in SIDES}) for i in range(repeats)],
         "peak_rss_mib": _peak_rss_mib(),
     }
 
 
+#: The images/s ratios reported per run and in the summary: name -> (numerator side, denominator side).
+RATIOS = {"images_per_s": ("pipeline", "baseline"), "vs_bicubic_baseline": ("pipeline", "baseline_bicubic"),
+          "kernels_vs_baseline": ("kernels", "baseline"), "pipeline_vs_kernels": ("pipeline", "kernels")}
+
+
+def _run_ratios(run: dict[str, RunResult]) -> dict[str, float]:
+    """The images/s ratios of one repeat (its sides were timed back to back), by wall time and, as
+    `<name>_cpu`, by process CPU time (which other work on a shared machine disturbs less)."""
+    out = {name: _ratio(run[a].images_per_s, run[b].images_per_s) for name, (a, b) in RATIOS.items()}
+    out.update({f"{name}_cpu": _ratio(run[a].images_per_cpu_s, run[b].images_per_cpu_s)
+                for name, (a, b) in RATIOS.items()})
+    return out
+
+
+def ratio_range(result: dict, name: str) -> tuple[float, float]:
+    """(lowest, highest) of one images/s ratio over the repeats of a run_bench result."""
+    values = [r[name] for r in result["ratio_runs"]]
+    return min(values), max(values)
+
+
 def format_bench(result: dict) -> str:
-    """A small table of both sides' medians, the per-run rates, and the ratio line."""
+    """A small table of every side's medians, the per-run rates, the stage profile and the ratio lines
+    (from the medians, with the range over the runs)."""
     side_px = result["baseline_square"]
     rows_, seq = result["pipeline_batch"]
     names = {
-        "baseline": f"baseline (square {side_px}x{side_px}, {result['baseline_batch_images']} img/batch)",
+        "baseline": f"baseline (bilinear square {side_px}x{side_px}, {result['baseline_batch_images']} img/batch)",
+        "baseline_bicubic": "baseline, bicubic",
+        "kernels": f"kernels alone (decode, {result.get('resample', '?')} resize, patchify)",
         "pipeline": f"pipeline ({rows_} x {seq} tokens/batch)",
     }
     head = ("", "images", "skipped", "tokens/img", "padding", "w/o last batch", "images/s", "useful tok/s",
@@ -415,15 +550,42 @@ def format_bench(result: dict) -> str:
         total = stages["total_us"] or 1.0
         parts = "  ".join(f"{k} {v:,.0f}" for k, v in stages["us_per_image"].items())
         lines.append(f"  pipeline stages, us/image over {stages['images']} images: {parts}  (sum {total:,.0f})")
-        pack = stages["us_per_image"].get("pack", 0.0)
-        lines.append(f"  packing share of the chain: {100 * pack / total:.2f} %")
+        per = stages["us_per_image"]
+        lines.append(f"  outside decode and resize: {total - per.get('decode', 0.0) - per.get('resize', 0.0):,.0f} "
+                     f"us/image; packing share of the chain: {100 * per.get('pack', 0.0) / total:.2f} %")
     if result.get("quality"):
         from .quality import format_quality
 
         lines += ["  " + line for line in format_quality(result["quality"]).splitlines()]
     ratio = result["ratio"]
     lines.append(f"  by CPU time: {ratio['images_per_cpu_s']:.2f}x images/s")
+    for name, label in (("vs_bicubic_baseline", "pipeline / bicubic baseline"),
+                        ("kernels_vs_baseline", "kernels alone / baseline"),
+                        ("pipeline_vs_kernels", "pipeline / kernels alone (1 - overhead)")):
+        lo, hi = ratio_range(result, name)
+        clo, chi = ratio_range(result, f"{name}_cpu")
+        lines.append(f"  {label}: {ratio[name]:.2f}x images/s (runs {lo:.2f} to {hi:.2f}); by CPU time "
+                     f"{ratio[name + '_cpu']:.2f}x (runs {clo:.2f} to {chi:.2f})")
+    lo, hi = ratio_range(result, "images_per_s")
     lines.append(f"pipeline / baseline: {ratio['images_per_s']:.2f}x images/s, "
-                 f"{ratio['useful_tokens_per_s']:.2f}x useful tokens/s")
+                 f"{ratio['useful_tokens_per_s']:.2f}x useful tokens/s (runs {lo:.2f} to {hi:.2f}x images/s)")
     return "\n".join(lines)
 
+
+
+def format_corpus_ratios(results: dict[str, dict]) -> str:
+    """Per corpus, its images/s ratios by wall time and by CPU time (medians, range over the runs)."""
+    head = ("corpus", "pipeline / baseline", "pipeline / bicubic", "kernels / baseline", "pipeline / kernels")
+    lines = ["ratios per corpus (images/s; median of the runs, range over the runs in brackets)"]
+    for clock, suffix in (("wall time", ""), ("CPU time", "_cpu")):
+        rows = [head]
+        for name, r in results.items():
+            cells = [f"{name} ({clock})"]
+            for key in RATIOS:
+                lo, hi = ratio_range(r, key + suffix)
+                cells.append(f"{r['ratio'][key + suffix]:.2f}x ({lo:.2f}-{hi:.2f})")
+            rows.append(tuple(cells))
+        widths = [max(len(row[i]) for row in rows) for i in range(len(head))]
+        lines += ["  " + "  ".join(c.ljust(w) if i == 0 else c.rjust(w) for i, (c, w) in enumerate(zip(row, widths)))
+                  for row in (rows if suffix == "" else rows[1:])]
+    return "\n".join(lines)

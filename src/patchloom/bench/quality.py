@@ -38,10 +38,11 @@ def _content(arr: np.ndarray, plan: SizePlan) -> np.ndarray:
 
 
 def decode_quality(recipe: Recipe, *, shards: str | list[str] | None = None, max_images: int = 300) -> dict[str, Any]:
-    """Mean, p5 and minimum PSNR of the pipeline's resize against full decode + Lanczos, over JPEGs.
+    """Mean, p5 and minimum PSNR of the pipeline's resize against full decode + Lanczos.
 
-    Only the sizing and decode stages run (no augmentation), on the first `max_images` JPEG
-    samples in shard order; samples that fail to decode are left out and counted.
+    Only the sizing and decode stages run (no augmentation), on the first `max_images` samples in
+    shard order (every format; only JPEGs can decode reduced); samples that fail to decode are left
+    out and counted.
     """
     urls = expand_shards(shards if shards is not None else recipe.source.shards, allow_shell=False)
     limit, bg, resample = recipe.decode.pixel_limit, recipe.decode.background, recipe.sizing.resample
@@ -56,8 +57,6 @@ def decode_quality(recipe: Recipe, *, shards: str | list[str] | None = None, max
         try:
             _ext, data = find_image(rec, recipe.source.image_keys)
             opened = open_image(data, pixel_limit=limit, memory_limit=recipe.decode.memory_limit)
-            if opened.format != "JPEG":
-                continue
             plan = plan_for(opened.height, opened.width, recipe, seed=recipe.seed, epoch=0, key=rec.key)
             hint = reduce_hint(opened, plan) if recipe.decode.reduced_jpeg else None
             image = opened.decode(background=bg, reduce_to=hint)
@@ -96,7 +95,7 @@ def format_quality(result: dict[str, Any]) -> str:
     p, f, r = result["pipeline"], result["full_decode_same_filter"], result["reduced_only"]
     paths = ", ".join(f"{k} {v}" for k, v in sorted(result["decode_paths"].items()))
     return "\n".join([
-        f"quality vs full decode + Lanczos ({result['images']} JPEGs, {result['reduced_decodes']} decoded reduced, "
+        f"quality vs full decode + Lanczos ({result['images']} images, {result['reduced_decodes']} decoded reduced, "
         f"{result['resample']} resize; decode paths: {paths or 'none'}):",
         f"  pipeline path:                mean {p['mean_db']:.1f} dB, p5 {p['p5_db']:.1f} dB, min {p['min_db']:.1f} dB",
         f"  reduced decodes alone:        mean {r['mean_db']:.1f} dB, p5 {r['p5_db']:.1f} dB, min {r['min_db']:.1f} dB",

@@ -39,8 +39,11 @@ def current_rss_mib() -> float | None:
 
 
 def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, workers: tuple[int, ...] = (0, 1, 2),
-                  epochs: int = 4, progress: bool = False) -> dict[str, Any]:
-    """Images/s through a torch DataLoader for each worker count (warm epochs and the cold first one)."""
+                  epochs: int = 4, progress: bool = False, pool_slots: int | None = None) -> dict[str, Any]:
+    """Images/s through a torch DataLoader for each worker count (warm epochs and the cold first one).
+
+    `pool_slots`: the dataset's reusable shared-memory batch slots per worker (None: its default;
+    0: a new shared segment per batch, torch's own way), to measure what the hand-over costs."""
     from torch.utils.data import DataLoader
 
     from ..adapters.torch import PatchloomDataset
@@ -50,7 +53,8 @@ def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, work
     urls = expand_shards(shards if shards is not None else recipe.source.shards, allow_shell=False)
     rows = []
     for w in workers:
-        ds = PatchloomDataset(recipe, urls, as_tensors=True)
+        ds = PatchloomDataset(recipe, urls, as_tensors=True,
+                              **({} if pool_slots is None else {"pool_slots": pool_slots}))
         loader = DataLoader(ds, batch_size=None, num_workers=w, persistent_workers=w > 0)
         rates, images, cold = [], 0, 0.0
         for epoch in range(epochs):
@@ -76,11 +80,13 @@ def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, work
     base = next((r["images_per_s"] for r in rows if r["workers"] == 0), None)
     for r in rows:
         r["ratio_to_0"] = r["images_per_s"] / base if base else float("nan")
-    return {"shards": len(urls), "epochs": epochs, "results": rows}
+    return {"shards": len(urls), "epochs": epochs, "pool_slots": pool_slots, "results": rows}
 
 
 def format_workers(result: dict[str, Any]) -> str:
-    lines = [f"DataLoader worker scaling ({result['shards']} shards, persistent workers, "
+    slots = result.get("pool_slots")
+    hand = "default batch slots" if slots is None else f"{slots} batch slots a worker"
+    lines = [f"DataLoader worker scaling ({result['shards']} shards, persistent workers, {hand}, "
              f"median of {result['epochs'] - 1} warm epoch(s); cold = first epoch with worker start)",
              f"  {'workers':>7} {'images':>7} {'images/s':>9} {'cold img/s':>11} {'vs 0 workers':>13}"]
     for r in result["results"]:

@@ -6,13 +6,19 @@ sizing stage can plan from the display size. `OpenedImage.decode` then decodes,
 applies the EXIF orientation, converts any Pillow mode to RGB (16-bit data scaled, alpha composited
 on a background, embedded ICC profiles converted to sRGB) and returns a PIL image.
 
-Two decoders share one contract. Baseline and progressive JPEGs in RGB or grey, with no colour
+Three decoders share one contract. Baseline and progressive JPEGs in RGB or grey, with no colour
 profile other than sRGB, are decoded by libjpeg-turbo through simplejpeg, which returns numpy
-pixels directly and scales in the DCT (1/2, 1/4, 1/8) faster than Pillow's draft mode; everything
-else (PNG, WebP, CMYK and Adobe JPEGs, non-sRGB ICC profiles, any JPEG simplejpeg refuses) goes
-through Pillow. Both paths pick the same DCT scale (the strongest of 1/2, 1/4, 1/8 that keeps the
-decoded size at least twice the planned size), apply the same EXIF orientation, and give pixels within
-rounding of each other; `decode_path_counts()` says which path each decode took.
+pixels directly and scales in the DCT (1/2, 1/4, 1/8) faster than Pillow's draft mode; 8-bit RGB,
+RGBA and grey PNGs and palette PNGs without transparency, with no colour profile other than sRGB,
+are decoded by libspng through pyspng; everything else (16-bit and low-bit PNGs, PNG colour keys,
+WebP, CMYK and Adobe JPEGs, non-sRGB ICC profiles, anything a fast decoder refuses) goes through
+Pillow. Both JPEG paths pick the same DCT scale (the strongest of 1/2, 1/4, 1/8 that keeps the
+decoded size at least twice the planned size); every path applies the same EXIF orientation and
+alpha compositing and gives pixels within rounding of the others (PNG: identical);
+`decode_path_counts()` says which path each decode took.
+
+A fast path hands its numpy pixels on inside a `DecodedImage`, a PIL image that gives them to
+numpy (`np.asarray`) without a copy and makes Pillow's own copy only when Pillow code touches it.
 
 Nothing here touches Pillow's process-wide settings (`Image.MAX_IMAGE_PIXELS`,
 `ImageFile.LOAD_TRUNCATED_IMAGES`): the pixel limit is per call.
@@ -31,6 +37,7 @@ import numpy as np
 from PIL import Image
 
 from ..errors import PatchloomError
+from .fastpath import DecodedImage, FastDecode, fast_pixels, orient_pixels
 
 try:  # littlecms support is optional in Pillow builds; without it ICC profiles are ignored.
     from PIL import ImageCms
@@ -42,9 +49,16 @@ try:  # libjpeg-turbo binding; without it every JPEG takes the Pillow path.
 except ImportError:  # pragma: no cover - a platform without a wheel
     simplejpeg = None  # type: ignore[assignment]
 
+try:  # libspng binding; without it every PNG takes the Pillow path.
+    import pyspng
+except ImportError:  # pragma: no cover - a platform without a wheel
+    pyspng = None  # type: ignore[assignment]
+
 __all__ = [
     "DCT_SCALES",
     "FORMATS",
+    "DecodedImage",
+    "FastDecode",
     "MEMORY_LIMIT",
     "REDUCE_MARGIN",
     "DecodeError",
@@ -52,8 +66,12 @@ __all__ = [
     "dct_scale",
     "decode_memory",
     "decode_path_counts",
+    "composite_pixels",
     "decode_rgb",
+    "fast_pixels",
+    "fast_rgb",
     "open_image",
+    "orient_pixels",
     "reset_decode_path_counts",
     "to_rgb",
 ]
@@ -66,7 +84,7 @@ DCT_SCALES: tuple[int, ...] = (8, 4, 2)
 #: antialiased resize that follows has real detail to average (at 1x the result visibly softens).
 REDUCE_MARGIN = 2
 
-# How many decodes took each path in this process: "simplejpeg", "pillow". Tests and benchmarks
+# How many decodes took each path in this process: "simplejpeg", "pyspng", "pillow". Tests and benchmarks
 # read it through decode_path_counts(); it is never used to make decisions.
 _PATHS: Counter[str] = Counter()
 
@@ -88,7 +106,16 @@ _TRANSPOSE = {
     8: Image.Transpose.ROTATE_90,
 }
 
+# PNGs libspng decodes exactly as Pillow does: (Pillow mode, raw mode) -> pyspng output format.
+# Palette images come out as RGB (the palette looked up, as Pillow's convert does).
+_PNG_FAST = {("RGB", "RGB"): "RGB", ("RGBA", "RGBA"): "RGBA", ("L", "L"): "L",
+             **{("P", raw): "RGB" for raw in ("P", "P;1", "P;2", "P;4")}}
+
 _SIXTEEN_BIT = ("I;16", "I;16B", "I;16L", "I;16N")
+
+#: numpy conversions run over row bands of about this many pixels, so their temporaries (int64 or
+#: float64 copies) stay at a few MB whatever the image size.
+_BAND_PIXELS = 1 << 18
 
 #: Default for `open_image(memory_limit=)` and the recipe's `decode.memory_limit`: 1 GiB. Every
 #: opaque 8-bit RGB or grey image the default pixel_limit (64 M pixels) admits stays under it (at
@@ -96,10 +123,6 @@ _SIXTEEN_BIT = ("I;16", "I;16B", "I;16L", "I;16N")
 #: RGBA image (22 bytes a pixel) is refused past about 48 M pixels instead of taking 1.4 GB at the
 #: pixel limit.
 MEMORY_LIMIT = 1 << 30
-
-#: numpy conversions run over row bands of about this many pixels, so their temporaries (int64 or
-#: float64 copies) stay at a few MB whatever the image size.
-_BAND_PIXELS = 1 << 18
 
 # Decode memory model (what `decode_memory` counts), in bytes per pixel of the stored image.
 # Pillow holds a decoded image at 1 byte a pixel for modes 1, L and P, 2 for I;16, and 4 for every
@@ -162,16 +185,13 @@ class OpenedImage:
         formats ignore it. Call once: the underlying Pillow image is consumed.
         """
         img = self.image
-        scale = 1
-        if reduce_to is not None and img.format in ("JPEG", "MPO"):
-            scale = dct_scale(img.size, _stored(reduce_to, self.orientation))
-        fast = self._decode_fast(scale) if self.data else None
+        scale = self.decode_scale(reduce_to)
+        fast = self._decode_fast(scale, background) if self.data else None
         if fast is not None:
-            _PATHS["simplejpeg"] += 1
+            path, pixels = fast
+            _PATHS[path] += 1
             img.close()
-            rgb = Image.fromarray(fast)
-            method = _TRANSPOSE.get(self.orientation)
-            return rgb if method is None else rgb.transpose(method)
+            return DecodedImage(orient_pixels(pixels, self.orientation))
         _PATHS["pillow"] += 1
         if scale > 1:
             w, h = img.size
@@ -190,27 +210,49 @@ class OpenedImage:
         method = _TRANSPOSE.get(self.orientation)
         return rgb if method is None else rgb.transpose(method)
 
-    def _decode_fast(self, scale: int) -> np.ndarray | None:
-        """Stored-orientation RGB pixels from libjpeg-turbo at 1/scale, or None to use Pillow.
+    def decode_scale(self, reduce_to: tuple[int, int] | None) -> int:
+        """The DCT scale decode(reduce_to=...) uses: 1, 2, 4 or 8 for a JPEG (see dct_scale), else 1."""
+        if reduce_to is None or self.image.format not in ("JPEG", "MPO"):
+            return 1
+        return dct_scale(self.image.size, _stored(reduce_to, self.orientation))
 
-        Only plain JPEGs qualify: format JPEG (not MPO), mode RGB or L (so not CMYK/YCCK or Adobe
-        inverted data), no colour profile unless it is sRGB. Any error or surprise (truncated
-        data, an unexpected output size) returns None, so Pillow decides and words the error.
+    def fast_decode(self, scale: int = 1) -> FastDecode | None:
+        """The fast decoder call for this image at 1/scale (JPEG only scales), or None: Pillow's turn.
+
+        JPEG (libjpeg-turbo): format JPEG (not MPO), mode RGB or L (so not CMYK/YCCK or Adobe
+        inverted data), no colour profile unless it is sRGB. PNG (libspng): only what libspng gives
+        exactly as Pillow does: 8-bit RGB, RGBA and grey, and palette images without transparency,
+        not animated, with no colour profile other than sRGB (none at all for grey).
         """
         img = self.image
-        if simplejpeg is None or img.format != "JPEG" or img.mode not in ("RGB", "L"):
-            return None
-        if "adobe" in img.info or not _is_srgb(img.info.get("icc_profile")):
-            return None
+        icc = img.info.get("icc_profile")
         w, h = img.size
-        out_w, out_h = -(-w // scale), -(-h // scale)
-        try:
-            pixels = simplejpeg.decode_jpeg(self.data, "RGB", min_height=out_h, min_width=out_w, strict=True)
-        except (ValueError, RuntimeError, OSError):
+        if img.format == "JPEG" and simplejpeg is not None and img.mode in ("RGB", "L"):
+            if "adobe" in img.info or not _is_srgb(icc):
+                return None
+            return FastDecode("simplejpeg", (-(-w // scale), -(-h // scale)), "RGB")
+        out = _PNG_FAST.get((img.mode, _rawmode(img))) if img.format == "PNG" else None
+        if pyspng is None or out is None or "transparency" in img.info or getattr(img, "n_frames", 1) != 1:
             return None
-        if pixels.shape != (out_h, out_w, 3):
+        if icc and (img.mode == "L" or not _is_srgb(icc)):
             return None
-        return pixels
+        return FastDecode("pyspng", (w, h), out)
+
+    def _decode_fast(self, scale: int, background: tuple[int, int, int]) -> tuple[str, np.ndarray] | None:
+        """(path name, stored-orientation RGB pixels) from a fast decoder, or None to use Pillow."""
+        call = self.fast_decode(scale)
+        pixels = None if call is None else fast_rgb(call, self.data, background)
+        return None if pixels is None else (call.path, pixels)
+
+
+def fast_rgb(call: FastDecode, data: bytes, background: tuple[int, int, int] = (255, 255, 255)) -> np.ndarray | None:
+    """The fast decoder's stored-orientation HxWx3 pixels (fastpath.fast_pixels), RGBA composited on
+    `background` by the Pillow path's rule; None to use Pillow. What decode() runs, and what the
+    benchmark's kernels line repeats."""
+    pixels = fast_pixels(call, data)
+    if pixels is not None and pixels.shape[2] == 4:
+        return composite_pixels(pixels[:, :, :3], pixels[:, :, 3], _check_background(background))
+    return pixels
 
 
 def decode_path_counts() -> dict[str, int]:
@@ -412,24 +454,23 @@ def decode_rgb(
 # ----------------------------------------------------------------------------- helpers
 
 
-def _file_depth(img: Image.Image) -> str:
-    """' (16 bits a sample in the file)' when the header says so (a PNG or TIFF raw mode), else ''."""
+def _rawmode(img: Image.Image) -> str:
+    """The decoder's raw mode from the header (e.g. 'RGB', 'RGB;16B', 'P;4'), or '' if unknown."""
     try:
-        rawmode = img.tile[0][3]
-        rawmode = rawmode[0] if isinstance(rawmode, tuple) else rawmode
+        raw = img.tile[0][3]
+        raw = raw[0] if isinstance(raw, tuple) else raw
     except (IndexError, TypeError, AttributeError):
         return ""
-    return " (16 bits a sample in the file)" if isinstance(rawmode, str) and ";16" in rawmode else ""
+    return raw if isinstance(raw, str) else ""
+
+
+def _file_depth(img: Image.Image) -> str:
+    """' (16 bits a sample in the file)' when the header says so (a PNG or TIFF raw mode), else ''."""
+    return " (16 bits a sample in the file)" if ";16" in _rawmode(img) else ""
 
 
 def _gib(n: int) -> str:
     return f"{n / (1 << 30):.2f} GiB" if n >= 1 << 30 else f"{n / (1 << 20):.1f} MiB"
-
-
-def _bands(height: int, width: int) -> list[slice]:
-    """Row slices of about _BAND_PIXELS pixels each, covering `height` rows."""
-    step = max(1, _BAND_PIXELS // max(1, width))
-    return [slice(y, y + step) for y in range(0, height, step)]
 
 
 def _orientation(img: Image.Image) -> int:
@@ -478,13 +519,6 @@ def _pixel_error(exc: Exception, opened: OpenedImage) -> DecodeError:
         f"corrupt image data ({text}) in a {what} image; re-encode the file, or set "
         f"source.on_error: skip to drop such samples"
     )
-
-
-def _check_background(background: tuple[int, int, int]) -> tuple[int, int, int]:
-    values = tuple(int(c) for c in background)
-    if len(values) != 3 or any(not 0 <= c <= 255 for c in values):
-        raise ValueError(f"background must be three values in 0..255 (got {background!r})")
-    return values  # type: ignore[return-value]
 
 
 def _split_alpha(img: Image.Image) -> tuple[Image.Image, np.ndarray | None]:
@@ -554,16 +588,16 @@ def _scale_float(arr: np.ndarray) -> np.ndarray:
     Float images come both as 0..1 (float TIFFs) and as 0..255 (Pillow's own convert("F")), so
     the range is read from the data. NaN and -inf become black, +inf white.
     """
-    bands = _bands(*arr.shape[:2])
+    row_bands = _bands(*arr.shape[:2])
     tops = []
-    for rows in bands:
+    for rows in row_bands:
         v = arr[rows].astype(np.float64)
         finite = v[np.isfinite(v)]
         if finite.size:
             tops.append(float(finite.max()))
     scale = 255.0 if max(tops, default=0.0) <= 1.0 else 1.0
     out = np.empty(arr.shape, dtype=np.uint8)
-    for rows in bands:
+    for rows in row_bands:
         v = np.nan_to_num(arr[rows].astype(np.float64), nan=0.0, posinf=255.0 / scale, neginf=0.0)
         out[rows] = np.clip(np.rint(v * scale), 0, 255)
     return out
@@ -592,10 +626,30 @@ def _icc_to_srgb(img: Image.Image, icc: bytes) -> Image.Image | None:
 
 
 def _composite(rgb: Image.Image, alpha: np.ndarray, bg: tuple[int, int, int]) -> Image.Image:
-    """Blend RGB over a solid background: round((c * a + b * (255 - a)) / 255) per channel.
+    """Blend an RGB image over a solid background (see composite_pixels)."""
+    return Image.fromarray(composite_pixels(np.asarray(rgb), alpha, bg))
 
-    Row band by row band in uint16: c * a + b * (255 - a) <= 255 * 255, + 127 still fits."""
-    c = np.asarray(rgb)
+
+def _check_background(background: tuple[int, int, int]) -> tuple[int, int, int]:
+    values = tuple(int(c) for c in background)
+    if len(values) != 3 or any(not 0 <= c <= 255 for c in values):
+        raise ValueError(f"background must be three values in 0..255 (got {background!r})")
+    return values  # type: ignore[return-value]
+
+
+def _bands(height: int, width: int) -> list[slice]:
+    """Row slices of about _BAND_PIXELS pixels each, covering `height` rows."""
+    step = max(1, _BAND_PIXELS // max(1, width))
+    return [slice(y, y + step) for y in range(0, height, step)]
+
+
+def composite_pixels(c: np.ndarray, alpha: np.ndarray, bg: tuple[int, int, int]) -> np.ndarray:
+    """Blend HxWx3 pixels over a solid background: round((c * a + b * (255 - a)) / 255) per channel.
+
+    Row band by row band in uint16: c * a + b * (255 - a) <= 255 * 255, + 127 still fits. Fully
+    opaque alpha gives the colour back exactly, so it is returned without the arithmetic."""
+    if alpha.size and int(alpha.min()) == 255:
+        return np.ascontiguousarray(c)
     out = np.empty(c.shape, dtype=np.uint8)
     b = np.asarray(bg, dtype=np.uint16).reshape(1, 1, 3)
     for rows in _bands(*c.shape[:2]):
@@ -607,4 +661,4 @@ def _composite(rgb: Image.Image, alpha: np.ndarray, bg: tuple[int, int, int]) ->
         x += 127
         x //= 255
         out[rows] = x
-    return Image.fromarray(out)
+    return out
