@@ -8,9 +8,12 @@ tar shards. The set deliberately mixes image formats and modes (EXIF-rotated JPE
 Everything is drawn with numpy (plus Pillow's ImageDraw, `demo.scenes`) from `numpy.random.SeedSequence`,
 so the same seed gives byte-identical shards (with the same Pillow build); no global random state is read.
 
-Each sample is `{key}.{ext}` (the image), `{key}.cls` (label id as ASCII text) and `{key}.json`
-(key, category, label, width and height as displayed, format, mode, caption, and for the special
-samples a `note` plus fields such as `exif_orientation` or `corrupt`).
+Each sample is `{key}.{ext}` (the image), `{key}.cls` (label id as ASCII text), `{key}.txt` (a
+one-line caption written from what the scene drew: sky, counts, colours; UTF-8) and `{key}.json`
+(key, category, label, width and height as displayed, format, mode, the same caption, and for the
+special samples a `note` plus fields such as `exif_orientation` or `corrupt`). A few samples are
+multi-image: one or two more views of the same scene as `{key}.1.jpg`, `{key}.2.jpg` (see `_views`;
+their JSON says `views`).
 """
 
 from __future__ import annotations
@@ -28,13 +31,14 @@ import numpy as np
 from PIL import Image, ImageDraw, features
 from tqdm import tqdm
 
-from .scenes import SCENES, draw_chart, draw_chart_on, unit_grid
+from .scenes import SCENES, Facts, draw_chart, draw_chart_on, unit_grid
 
 __all__ = [
     "DEMO_CLASSES",
     "DEMO_CORRUPT_KEYS",
     "DEMO_KEY_PREFIX",
     "MIN_SAMPLES",
+    "caption_for",
     "demo_key",
     "demo_shard_pattern",
     "make_demo_shards",
@@ -95,27 +99,45 @@ def _pick_size(category: str, rng: np.random.Generator) -> tuple[int, int]:
 
 _PLACES = ["Gullwick Point", "the Wrenfold breakwater", "Pellock Sands", "Tidewell Row",
            "Brackmoor Lane", "the old net loft", "Cindle Cove", "the tide-gauge hut", "Harbour Steps"]
-_TIMES = ["Early morning", "Low tide", "Late afternoon", "Dusk", "A grey noon", "High water"]
-_CAPTIONS = {
-    "shoreline": ["{time} off {place}, looking out to sea.", "{time} at {place}; calm water, sun low.",
-                  "Survey frame from {place}: horizon, swell and sky."],
-    "facade": ["Front elevation, {n} {street}.", "House front on {street}, recorded for the survey.",
-               "Shopfront at {n} {street}, ground floor let."],
-    "receipt": ["Chandlery receipt found in the {place} ledger box.", "Till slip, fish market, item {n}.",
-                "Ferry ticket stub filed with the {place} notes."],
-    "panorama": ["Panorama of the headland from {place}.", "Wide view across the bay toward {place}.",
-                 "Stitched sweep of the ridge above {place}."],
-    "thumbnail": ["Index-card preview no. {n}.", "Contact-sheet crop, frame {n}.", "Tiny preview from card {n}."],
-    "chart": ["Tide readings at {place}, week {n}.", "Monthly catch counts logged at {place}.",
-              "Water temperature at {place}, survey year {n}."],
-}
+_WORDS = ("no", "one", "two", "three", "four", "five", "six", "seven", "eight", "nine", "ten", "eleven", "twelve")
+_SIDE = {"left": "on the left", "middle": "in the middle", "right": "on the right"}
 
 
-def _caption(category: str, rng: np.random.Generator) -> str:
-    """A one-line, entirely made-up caption for a sample."""
-    template = _CAPTIONS[category][int(rng.integers(len(_CAPTIONS[category])))]
-    return template.format(time=_TIMES[int(rng.integers(len(_TIMES)))], place=_PLACES[int(rng.integers(len(_PLACES)))],
-                           street=_PLACES[int(rng.integers(3, 5))], n=int(rng.integers(1, 60)))
+def _word(n: int) -> str:
+    """'no', 'one', ... 'twelve', then digits."""
+    return _WORDS[n] if n < len(_WORDS) else str(n)
+
+
+def _count(n: int, noun: str, plural: str | None = None) -> str:
+    """'three windows', 'one ridge', '14 bars'."""
+    return f"{_word(n)} {noun if n == 1 else plural or noun + 's'}"
+
+
+def caption_for(category: str, facts: Facts, place: str) -> str:
+    """A one-line caption of a demo scene, written from the facts its renderer recorded (see
+    demo.scenes) and a made-up place name, e.g. 'The sea off Cindle Cove at dusk with a sandy beach;
+    the sun is on the left.'"""
+    sky = "at dusk" if facts.get("sky") == "dusk" else "on a clear day"
+    if category == "shoreline":
+        extras = [x for x, on in (("a sandy beach", facts["beach"]),
+                                  ("a lighthouse on the horizon", facts["lighthouse"])) if on]
+        with_ = f" with {' and '.join(extras)}" if extras else ""
+        return f"The sea off {place} {sky}{with_}; the sun is {_SIDE[facts['sun']]}."
+    if category == "facade":
+        sign = ", and a shop sign" if facts["sign"] else ""
+        article = "An" if str(facts["wall"])[0] in "aeiou" else "A"
+        lit = _word(facts["lit"]) if facts["lit"] else "none"
+        return (f"{article} {facts['wall']} {'brick' if facts['brick'] else 'rendered'} house front with "
+                f"{_count(facts['rows'], 'row')} of {_count(facts['cols'], 'window')}, {lit} of them lit{sign}.")
+    if category == "receipt":
+        return f"A paper till receipt about {facts['length']} times as tall as it is wide, with a barcode at the foot."
+    if category == "panorama":
+        return f"A wide view of {_count(facts['ridges'], 'hazy ridge')} above the water {sky}, seen from {place}."
+    if category == "thumbnail":
+        return f"A tiny preview card with a red disk {_SIDE[facts['disk']]} and a dark band below it."
+    if facts.get("kind") == "line":
+        return f"A line chart of tide readings at {place} with {_count(facts['series'], 'series', 'series')}."
+    return f"A bar chart of catch counts at {place} with {_count(facts['bars'], 'bar')}."
 
 
 # --------------------------------------------------------------------------------------------
@@ -135,6 +157,7 @@ class _Encoded:
     height: int
     note: str = ""
     extra: tuple[tuple[str, object], ...] = ()
+    caption: str = ""  # set by encoders that draw a picture of their own (else the scene's caption)
 
 
 def _save(im: Image.Image, fmt: str, **options: object) -> bytes:
@@ -189,8 +212,10 @@ def _enc_rgba_png(arr: np.ndarray, rng: np.random.Generator) -> _Encoded:
     """RGBA PNG chart: fully transparent outside the plot area (the renderer is redrawn on alpha)."""
     h, w = arr.shape[:2]
     im = Image.new("RGBA", (w, h), (0, 0, 0, 0))
-    draw_chart_on(ImageDraw.Draw(im), w, h, rng)
-    return _Encoded(_save(im, "PNG"), "png", "PNG", "RGBA", w, h, "transparent background")
+    facts: Facts = {}
+    draw_chart_on(ImageDraw.Draw(im), w, h, rng, facts)
+    return _Encoded(_save(im, "PNG"), "png", "PNG", "RGBA", w, h, "transparent background",
+                    caption=f"A {facts['kind']} chart on a transparent background.")
 
 
 def _enc_palette_gif(arr: np.ndarray, rng: np.random.Generator) -> _Encoded:
@@ -207,7 +232,8 @@ def _enc_palette_gif(arr: np.ndarray, rng: np.random.Generator) -> _Encoded:
     im = Image.frombytes("P", (w, h), idx.tobytes())
     im.putpalette([0, 0, 0, 30, 30, 40, 220, 60, 40, 245, 245, 240] + [0, 0, 0] * 252)
     data = _save(im, "GIF", transparency=0, optimize=False)
-    return _Encoded(data, "gif", "GIF", "P", w, h, "palette with transparent index 0")
+    return _Encoded(data, "gif", "GIF", "P", w, h, "palette with transparent index 0",
+                    caption="A red and white life ring on a transparent background.")
 
 
 def _enc_png16(arr: np.ndarray, rng: np.random.Generator) -> _Encoded:
@@ -218,7 +244,8 @@ def _enc_png16(arr: np.ndarray, rng: np.random.Generator) -> _Encoded:
              + 0.5 * np.sin(2 * np.pi * 4 * (x + y)))
     field = (field - field.min()) / max(1e-6, float(np.ptp(field)))
     im = Image.fromarray(np.round(field * 65535).astype(np.uint16))
-    return _Encoded(_save(im, "PNG"), "png", "PNG", "I;16", w, h, "16-bit grayscale height map")
+    return _Encoded(_save(im, "PNG"), "png", "PNG", "I;16", w, h, "16-bit grayscale height map",
+                    caption="A grey height map of the tide: smooth waves of light and dark.")
 
 
 def _enc_cmyk_jpeg(arr: np.ndarray, rng: np.random.Generator) -> _Encoded:
@@ -275,6 +302,29 @@ MIN_SAMPLES = len(_SPECIALS) + 1
 _WEIGHTS = {"shoreline": 0.26, "facade": 0.2, "receipt": 0.14, "panorama": 0.1, "thumbnail": 0.14, "chart": 0.16}
 
 
+#: Every MULTI_VIEW_EVERY-th ordinary slot (index % MULTI_VIEW_EVERY == MULTI_VIEW_AT) is a multi-image
+#: sample: besides its image it holds 1 or 2 more views of the same scene as `{key}.1.jpg`, `{key}.2.jpg`
+#: (read by recipes with source.images_per_sample: all; the others read the first image only).
+MULTI_VIEW_EVERY, MULTI_VIEW_AT = 16, 5
+
+
+def _views(seed: int, shard: int, index: int, pixels: np.ndarray) -> dict[str, bytes]:
+    """The extra views of a multi-view slot (else none): crops of the drawn scene, panning from left to
+    right over 60 % of its width and 80 % of its height, each a JPEG from the slot's own generator."""
+    if index % MULTI_VIEW_EVERY != MULTI_VIEW_AT:
+        return {}
+    rng = np.random.default_rng(np.random.SeedSequence([_SEED_SALT, int(seed), shard, index, 1]))
+    n = 1 + (index // MULTI_VIEW_EVERY) % 2
+    h, w = pixels.shape[:2]
+    ch, cw = max(1, round(0.8 * h)), max(1, round(0.6 * w))
+    out = {}
+    for k in range(1, n + 1):
+        left = round((w - cw) * k / n)
+        top = int(rng.integers(0, h - ch + 1))
+        out[f"{k}.jpg"] = _jpeg(np.ascontiguousarray(pixels[top : top + ch, left : left + cw]), rng).data
+    return out
+
+
 def _special_slots(shards: int, per_shard: int) -> dict[tuple[int, int], _Special]:
     """Place the special samples round-robin over the shards' first slots, the corrupt one fixed."""
     slots = {_CORRUPT_SLOT: _CORRUPT}
@@ -296,21 +346,28 @@ def _sample(seed: int, shard: int, index: int, special: _Special | None) -> tupl
         lossless = (category == "chart" and rng.random() < 0.4) or (category == "thumbnail" and rng.random() < 0.2)
         encode = _png if lossless else _jpeg
     noisy_chart = category == "chart" and encode is _jpeg
-    pixels = draw_chart(h, w, rng, noise=2.0) if noisy_chart else SCENES[category](h, w, rng)
+    facts: Facts = {}
+    pixels = draw_chart(h, w, rng, facts, noise=2.0) if noisy_chart else SCENES[category](h, w, rng, facts)
     enc = encode(pixels, rng)
     key = demo_key(shard, index)
+    caption = enc.caption or caption_for(category, facts, _PLACES[int(rng.integers(len(_PLACES)))])
     meta: dict[str, object] = {
         "key": key, "category": category, "label": _CLASS_ID[category], "width": enc.width, "height": enc.height,
-        "format": enc.fmt, "mode": enc.mode, "caption": _caption(category, rng),
+        "format": enc.fmt, "mode": enc.mode, "caption": caption,
     }
     if enc.note:
         meta["note"] = enc.note
     meta.update(dict(enc.extra))
+    views = _views(seed, shard, index, pixels) if special is None else {}
+    if views:
+        meta["views"] = 1 + len(views)
     members = {
         enc.ext: enc.data,
         "cls": str(_CLASS_ID[category]).encode("ascii"),
         "json": json.dumps(meta, ensure_ascii=False, sort_keys=True).encode("utf-8"),
+        "txt": caption.encode("utf-8"),
     }
+    members.update(views)
     return members, meta
 
 
@@ -382,8 +439,12 @@ def _readme(out: Path, shards: int, per_shard: int, seed: int, counts: dict[str,
         f"shards: {shards} x {per_shard} samples, seed {seed}",
         f"pattern: {demo_shard_pattern(out, shards=shards)}",
         "",
-        "Each sample is {key}.{ext} (the image), {key}.cls (label id as text) and {key}.json",
-        "(category, label, width and height as displayed, format, mode, caption).",
+        "Each sample is {key}.{ext} (the image), {key}.cls (label id as text), {key}.txt (a",
+        "caption of what the scene shows) and {key}.json (category, label, width and height as",
+        "displayed, format, mode, caption).",
+        "",
+        f"Every {MULTI_VIEW_EVERY}th sample (index {MULTI_VIEW_AT}, {MULTI_VIEW_AT + MULTI_VIEW_EVERY}, ...) also holds",
+        "one or two more views of its scene as {key}.1.jpg, {key}.2.jpg (source.images_per_sample: all).",
         "",
         "Classes (label id: name, count):",
         *(f"  {i}: {name} ({counts[name]})" for i, name in enumerate(DEMO_CLASSES)),

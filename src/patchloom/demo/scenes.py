@@ -2,18 +2,22 @@
 receipts, panoramas, thumbnails and charts of any size, from a given numpy Generator only.
 
 Used by the demo shards (`demo.data`) and the benchmark corpus (`bench.photos`). Nothing real is
-depicted; the same generator state gives the same pixels.
+depicted; the same generator state gives the same pixels. Each renderer takes an optional `facts`
+dict that it fills with what it drew (sky, counts, colours), from which the demo writes captions;
+passing it changes no draw.
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
+from typing import Any
 
 import numpy as np
 from PIL import Image, ImageChops, ImageDraw
 
 __all__ = [
     "SCENES",
+    "WALL_COLOURS",
     "draw_chart",
     "draw_chart_on",
     "draw_facade",
@@ -25,6 +29,7 @@ __all__ = [
 ]
 
 _Rgb = tuple[int, int, int]
+Facts = dict[str, Any]
 
 
 # --------------------------------------------------------------------------------------------
@@ -109,16 +114,20 @@ def _text_bars(draw: ImageDraw.ImageDraw, rng: np.random.Generator, box: tuple[i
 # --------------------------------------------------------------------------------------------
 
 
-def _sky_palette(rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
-    """(zenith, horizon) sky colours: a clear-day or a dusk palette."""
+def _sky_palette(rng: np.random.Generator, facts: Facts) -> tuple[np.ndarray, np.ndarray]:
+    """(zenith, horizon) sky colours: a clear-day or a dusk palette (facts["sky"] says which)."""
     if rng.random() < 0.6:
+        facts["sky"] = "clear"
         return _jitter(rng, (70, 130, 200)), _jitter(rng, (190, 215, 235))
+    facts["sky"] = "dusk"
     return _jitter(rng, (60, 50, 110)), _jitter(rng, (245, 160, 95))
 
 
-def draw_shoreline(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
-    """Sky gradient, sun disk with glow and reflection, sea with perspective waves, maybe a beach."""
-    top, low = _sky_palette(rng)  # every random draw happens here; base() only computes
+def draw_shoreline(h: int, w: int, rng: np.random.Generator, facts: Facts | None = None) -> np.ndarray:
+    """Sky gradient, sun disk with glow and reflection, sea with perspective waves, maybe a beach.
+    facts: sky, sun ("left"/"middle"/"right"), beach, lighthouse."""
+    facts = {} if facts is None else facts
+    top, low = _sky_palette(rng, facts)  # every random draw happens here; base() only computes
     horizon = float(rng.uniform(0.42, 0.62))
     cx, cy = float(rng.uniform(0.15, 0.85)), float(rng.uniform(0.1, horizon - 0.08))
     radius_frac = float(rng.uniform(0.04, 0.09))
@@ -127,6 +136,7 @@ def draw_shoreline(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
     fx, phase = float(rng.uniform(2.0, 6.0)), float(rng.uniform(0, 2 * np.pi))
     beach = rng.random() < 0.5
     sand_top, sand_low, beach_f = _jitter(rng, (205, 185, 140)), _jitter(rng, (170, 150, 110)), float(rng.uniform(1, 3))
+    facts.update(sun="left" if cx < 0.4 else "right" if cx > 0.6 else "middle", beach=beach, lighthouse=False)
 
     def base(hh: int, ww: int) -> np.ndarray:
         y, x = unit_grid(hh, ww)
@@ -152,6 +162,7 @@ def draw_shoreline(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
 
     img = _smooth(h, w, base)
     if rng.random() < 0.4 and h >= 60:  # a lighthouse on the horizon
+        facts["lighthouse"] = True
         d = ImageDraw.Draw(img)
         lx, foot, tower = int(rng.uniform(0.05, 0.9) * w), int(horizon * h), int(0.22 * h)
         half = max(2, tower // 10)
@@ -161,13 +172,21 @@ def draw_shoreline(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
     return _finish(img, rng, 2.5)
 
 
-def draw_facade(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
-    """A building front: brick or render wall, a grid of windows (some lit), a door and a roofline."""
+#: Names of draw_facade's four wall colours, in its order.
+WALL_COLOURS = ("red", "cream", "slate blue", "ochre")
+
+
+def draw_facade(h: int, w: int, rng: np.random.Generator, facts: Facts | None = None) -> np.ndarray:
+    """A building front: brick or render wall, a grid of windows (some lit), a door and a roofline.
+    facts: brick, wall (a WALL_COLOURS name), rows, cols, lit (windows lit), sign."""
+    facts = {} if facts is None else facts
+    facts["brick"] = False
     yy = np.arange(h, dtype=np.int32)[:, None]
     xx = np.arange(w, dtype=np.int32)[None, :]
     # one colour-index map (0 wall, 1 mortar, 2.. windows, last roof), then a single table lookup
     idx = np.zeros((h, w), np.uint8)
     if rng.random() < 0.6:  # brick courses: mortar lines, alternate rows offset by half a brick
+        facts["brick"] = True
         bh = max(3, h // 60)
         bw = bh * 3
         joints = [(xx + shift) % bw == 0 for shift in (0, bw // 2)]  # vertical joints, even/odd course
@@ -182,8 +201,10 @@ def draw_facade(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
     in_y = (fy - ri > 0.15) & (fy - ri < 0.8) & (ri >= 0) & (ri < rows)
     idx = np.where(in_x & in_y, (2 + ri * cols + ci).astype(np.uint8), idx)
     idx[:roof] = 2 + rows * cols
-    wall = _jitter(rng, [(170, 80, 60), (210, 200, 180), (120, 140, 160), (200, 170, 120)][int(rng.integers(4))], 20)
+    wall_index = int(rng.integers(4))
+    wall = _jitter(rng, [(170, 80, 60), (210, 200, 180), (120, 140, 160), (200, 170, 120)][wall_index], 20)
     lit = rng.random(rows * cols) < 0.3
+    facts.update(wall=WALL_COLOURS[wall_index], rows=rows, cols=cols, lit=int(lit.sum()), sign=False)
     glass = np.where(lit[:, None], [250, 220, 130], [45, 60, 80]) + rng.uniform(-15, 15, (rows * cols, 3))
     table = np.vstack([wall, wall * 0.75 + 40, glass, _jitter(rng, (60, 55, 60), 15)])
     img = np.clip(table, 0, 255).astype(np.uint8)[idx]
@@ -193,6 +214,7 @@ def draw_facade(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
     dx = int(w * rng.uniform(0.25, 0.75)) - dw // 2
     d.rectangle([dx, int(h * 0.8), dx + dw, h], fill=tuple(int(c) for c in _jitter(rng, (80, 45, 30), 20)))
     if rng.random() < 0.5 and w >= 60:  # a shop sign with lettering bars
+        facts["sign"] = True
         sy = int(h * 0.72)
         d.rectangle([w // 10, sy, w - w // 10, sy + max(4, h // 25)], fill=(30, 50, 40))
         _text_bars(d, rng, (w // 10 + 4, sy + 2, w - w // 10 - 4, sy + max(4, h // 25) - 1),
@@ -200,8 +222,11 @@ def draw_facade(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
     return _finish(pil, rng, 2.5)
 
 
-def draw_receipt(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
-    """A tall paper slip: header, rows of text bars with prices, dashed rules and a barcode."""
+def draw_receipt(h: int, w: int, rng: np.random.Generator, facts: Facts | None = None) -> np.ndarray:
+    """A tall paper slip: header, rows of text bars with prices, dashed rules and a barcode.
+    facts: length (height over width, rounded)."""
+    if facts is not None:
+        facts["length"] = max(1, round(h / max(1, w)))
     fresh, aged = _jitter(rng, (246, 244, 236), 6), _jitter(rng, (232, 226, 206), 8)
 
     def paper(hh: int, ww: int) -> np.ndarray:
@@ -231,11 +256,14 @@ def draw_receipt(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
     return _finish(img, rng, 3.0)
 
 
-def draw_panorama(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
-    """A very wide headland view: sky, layered hazy ridges (sums of sines), water in front."""
-    top, low = _sky_palette(rng)
+def draw_panorama(h: int, w: int, rng: np.random.Generator, facts: Facts | None = None) -> np.ndarray:
+    """A very wide headland view: sky, layered hazy ridges (sums of sines), water in front.
+    facts: sky, ridges."""
+    facts = {} if facts is None else facts
+    top, low = _sky_palette(rng, facts)
     near = _jitter(rng, (40, 70, 45), 15)
     layers = int(rng.integers(2, 5))
+    facts["ridges"] = layers
     waves = [[(float(rng.uniform(1.0, 14.0)), float(rng.uniform(0.01, 0.06)), float(rng.uniform(0, 6.3)))
               for _ in range(4)] for _ in range(layers)]
     water = float(rng.uniform(0.78, 0.88))
@@ -256,12 +284,15 @@ def draw_panorama(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
     return _finish(_smooth(h, w, base), rng, 2.5)
 
 
-def draw_thumbnail(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
-    """A tiny index-card preview: a diagonal gradient, a coloured disk and a band."""
+def draw_thumbnail(h: int, w: int, rng: np.random.Generator, facts: Facts | None = None) -> np.ndarray:
+    """A tiny index-card preview: a diagonal gradient, a coloured disk and a band.
+    facts: disk ("left"/"middle"/"right": where the disk's centre is)."""
     y, x = unit_grid(h, w)
     corner_a, corner_b = _jitter(rng, (90, 140, 190), 40), _jitter(rng, (220, 200, 150), 40)
     img = _lerp(corner_a, corner_b, np.broadcast_to((x + y) / 2, (h, w)))
     cx, cy, r = rng.uniform(0.25, 0.75), rng.uniform(0.25, 0.75), rng.uniform(0.15, 0.35)
+    if facts is not None:
+        facts["disk"] = "left" if cx < 0.42 else "right" if cx > 0.58 else "middle"
     disk = ((x - cx) * w) ** 2 + ((y - cy) * h) ** 2 < (r * min(h, w)) ** 2
     img = np.where(disk[..., None], _jitter(rng, (200, 60, 50), 50), img)
     band = np.abs(y - rng.uniform(0.6, 0.9)) < 0.08
@@ -269,15 +300,20 @@ def draw_thumbnail(h: int, w: int, rng: np.random.Generator) -> np.ndarray:
     return _finish(img, rng, 2.0)
 
 
-def draw_chart(h: int, w: int, rng: np.random.Generator, *, noise: float = 0.0) -> np.ndarray:
-    """A plot of tide readings or catch counts: grid, axes, title bar and lines or bars."""
+def draw_chart(h: int, w: int, rng: np.random.Generator, facts: Facts | None = None, *,
+               noise: float = 0.0) -> np.ndarray:
+    """A plot of tide readings or catch counts: grid, axes, title bar and lines or bars (facts as
+    draw_chart_on)."""
     pil = Image.new("RGB", (w, h), tuple(int(c) for c in _jitter(rng, (250, 249, 244), 5)))
-    draw_chart_on(ImageDraw.Draw(pil), w, h, rng)
+    draw_chart_on(ImageDraw.Draw(pil), w, h, rng, facts)
     return _finish(pil, rng, noise)
 
 
-def draw_chart_on(d: ImageDraw.ImageDraw, w: int, h: int, rng: np.random.Generator) -> None:
-    """Draw the plot elements of a chart onto an existing RGB or RGBA canvas."""
+def draw_chart_on(d: ImageDraw.ImageDraw, w: int, h: int, rng: np.random.Generator,
+                  facts: Facts | None = None) -> None:
+    """Draw the plot elements of a chart onto an existing RGB or RGBA canvas.
+    facts: kind ("line"/"bar"), series (lines) or bars (bar count)."""
+    facts = {} if facts is None else facts
     ml, mr, mt, mb = int(w * 0.12), int(w * 0.05), int(h * 0.12), int(h * 0.12)
     x0, x1, y0, y1 = ml, w - mr, mt, h - mb
     d.rectangle([x0, y0, x1, y1], fill=(255, 255, 255, 230))
@@ -289,13 +325,16 @@ def draw_chart_on(d: ImageDraw.ImageDraw, w: int, h: int, rng: np.random.Generat
     if rng.random() < 0.5:
         n = int(rng.integers(30, 120))
         xs = np.linspace(x0 + 2, x1 - 2, n)
-        for s in range(int(rng.integers(1, 4))):
+        series = int(rng.integers(1, 4))
+        facts.update(kind="line", series=series)
+        for s in range(series):
             walk = np.cumsum(rng.normal(0, 1, n)) + 3 * np.sin(np.linspace(0, float(rng.uniform(3, 12)), n))
             walk = (walk - walk.min()) / max(1e-6, float(np.ptp(walk)))
             ys = y1 - 4 - walk * (y1 - y0 - 8)
             d.line(list(zip(xs.tolist(), ys.tolist())), fill=palette[s] + (255,), width=max(1, w // 250))
     else:
         n = int(rng.integers(4, 16))
+        facts.update(kind="bar", bars=n)
         slot = (x1 - x0) / n
         heights = rng.uniform(0.1, 0.95, n)
         for i, frac in enumerate(heights):
@@ -304,7 +343,8 @@ def draw_chart_on(d: ImageDraw.ImageDraw, w: int, h: int, rng: np.random.Generat
                         fill=palette[i % 2] + (255,))
 
 
-SCENES: dict[str, Callable[[int, int, np.random.Generator], np.ndarray]] = {
+#: Category -> renderer (h, w, rng, facts=None) -> HxWx3 uint8.
+SCENES: dict[str, Callable[..., np.ndarray]] = {
     "shoreline": draw_shoreline,
     "facade": draw_facade,
     "receipt": draw_receipt,

@@ -9,7 +9,9 @@ functions are plain numpy functions of a grid (or of the patches), a rate and a 
 - `drop_block`    blockwise masking (Bao et al. 2021, BEiT): random rectangles until the count;
 - `drop_grid`     keep a strided sub-grid (every k-th row and column, random offsets);
 - `drop_stripes`  whole random rows or columns;
-- `drop_content`  the least informative patches (lowest pixel variance) first.
+- `drop_content`  the least informative patches (lowest pixel variance) first;
+- `tube`          for clips: random spatial positions, the same in every temporal slice (tube
+                  masking for masked video modelling); on an image it is `random`.
 
 Rules shared by every mode:
 
@@ -22,6 +24,12 @@ Rules shared by every mode:
   stripe that would leave too few; grid lowers the stride until the lattice keeps enough.
   `decide_drop` passes `DropConfig.min_keep` through.
 - The generator is always passed in; nothing here reads global random state.
+- With `window` m > 1 (sizing.grid_multiple), `decide_drop` runs the mode on the grid of m x m
+  windows (`window_drop`), so whole windows are dropped or masked and the rate is counted in windows.
+- On a clip of S temporal slices (`slices`), the rate is drawn once for all its S*gh*gw tokens;
+  `tube` decides once on the spatial grid and repeats it in every slice, every other mode decides
+  each slice on its own (in slice order, from the one generator). min_keep then holds per clip:
+  each slice keeps at least ceil(min_keep / S).
 
 `DROP_MODES` (name -> mode function, one uniform signature, see `DropMode`) is the one place a
 mode is registered: `decide_drop` dispatches through it and the recipe's `drop.mode` values are
@@ -32,7 +40,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -66,6 +74,9 @@ class DropDecision:
     rate: float
     blocks: tuple[Rect, ...] = ()
     mode: str = "none"
+    # Temporal slices the decision covers (a clip): keep is then [slices * gh * gw], slice-major;
+    # blocks are the spatial blocks of a tube decision, () for per-slice decisions.
+    slices: int = 1
 
     @property
     def kept(self) -> int:
@@ -388,6 +399,12 @@ def mode_content(grid: Grid, rate: float, cfg: DropConfig, rng: np.random.Genera
     return drop_content(patches(), rate, rng, noise=cfg.content.noise, min_keep=cfg.min_keep), ()
 
 
+def mode_tube(grid: Grid, rate: float, cfg: DropConfig, rng: np.random.Generator, patches: Pixels) -> Kept:
+    """Tube masking: `drop_random` positions on the spatial grid; `decide_drop` repeats them in every
+    temporal slice of a clip (the same spatial positions dropped throughout)."""
+    return drop_random(grid[0] * grid[1], rate, rng, min_keep=cfg.min_keep), ()
+
+
 #: name -> mode: the one place a drop mode is registered (recipe `drop.mode` takes these names).
 DROP_MODES: dict[str, DropMode] = {
     "none": mode_none,
@@ -396,7 +413,11 @@ DROP_MODES: dict[str, DropMode] = {
     "grid": mode_grid,
     "stripes": mode_stripes,
     "content": mode_content,
+    "tube": mode_tube,
 }
+
+#: Modes that decide once on the spatial grid and repeat it in every slice of a clip.
+TUBE_MODES = ("tube",)
 
 
 def drop_mode(name: str) -> DropMode:
@@ -434,19 +455,90 @@ def _raster(patches: np.ndarray | None, coords: np.ndarray | None, grid: tuple[i
 
 
 def decide_drop(cfg: DropConfig, grid: tuple[int, int], patches: np.ndarray | None,
-                rng: np.random.Generator, *, coords: np.ndarray | None = None) -> DropDecision:
+                rng: np.random.Generator, *, coords: np.ndarray | None = None, window: int = 1,
+                times: np.ndarray | None = None, slices: int = 1) -> DropDecision:
     """Every random choice of token dropping for one image, as a DropDecision.
 
     The rate from `target_rate` (0 in mode none), then the mode's DROP_MODES entry, which passes
     `min_keep=cfg.min_keep` on (see the module docstring for how each mode honours it). `patches`
     ([gh*gw, D], raster order) is only read by modes that need pixels (content) and may be None
     otherwise; pass `coords` when the patches are not in raster order.
+
+    `window` m > 1 (sizing.grid_multiple) drops whole m x m windows: the mode runs on the grid of
+    windows (see `window_drop`) and its keep mask is widened back to tokens.
+
+    A clip passes `slices` S > 1 and `times` (each token's slice): see `clip_drop`.
     """
     gh, gw = _check_grid(grid)
     mode = drop_mode(cfg.mode)
+    if slices > 1:
+        return clip_drop(mode, cfg, (gh, gw), patches, rng, coords=coords, window=window, times=times,
+                         slices=slices)
     rate = target_rate(cfg, gh * gw, rng)
+    if window > 1:
+        return window_drop(mode, cfg, (gh, gw), rate, rng, lambda: _raster(patches, coords, (gh, gw)), window)
     keep, blocks = mode((gh, gw), rate, cfg, rng, lambda: _raster(patches, coords, (gh, gw)))
     return DropDecision(keep, rate, tuple(blocks), cfg.mode)
+
+
+def clip_drop(mode: DropMode, cfg: DropConfig, grid: Grid, patches: np.ndarray | None, rng: np.random.Generator, *,
+              coords: np.ndarray | None, window: int, times: np.ndarray | None, slices: int) -> DropDecision:
+    """The decision for a clip of `slices` temporal slices of a gh x gw grid: the rate drawn once
+    over all its tokens, then either one spatial decision repeated in every slice (TUBE_MODES) or one
+    decision per slice, in slice order. Each slice keeps at least ceil(min_keep / slices) tokens.
+    keep is [slices * gh * gw], slice-major (the order of PatchSet.times)."""
+    gh, gw = grid
+    rate = target_rate(cfg, slices * gh * gw, rng)
+    scfg = cfg.model_copy(update={"min_keep": -(-cfg.min_keep // slices)})
+
+    def one(pixels: Pixels) -> DropDecision:
+        if window > 1:
+            return window_drop(mode, scfg, grid, rate, rng, pixels, window)
+        keep, blocks = mode(grid, rate, scfg, rng, pixels)
+        return DropDecision(np.asarray(keep, bool), rate, tuple(blocks), cfg.mode)
+
+    if cfg.mode in TUBE_MODES:
+        d = one(lambda: _raster(None, None, grid))
+        return DropDecision(np.tile(d.keep, slices), rate, d.blocks, cfg.mode, slices)
+
+    def slice_pixels(s: int) -> Pixels:
+        def pixels() -> np.ndarray:
+            if patches is None or times is None:
+                raise ValueError(f"mode {cfg.mode} needs the patches and their times on a clip")
+            sel = np.asarray(times) == s
+            return _raster(np.asarray(patches)[sel], None if coords is None else np.asarray(coords)[sel], grid)
+        return pixels
+
+    keeps = [one(slice_pixels(s)).keep for s in range(slices)]
+    return DropDecision(np.concatenate(keeps), rate, (), cfg.mode, slices)
+
+
+def window_drop(mode: DropMode, cfg: DropConfig, grid: Grid, rate: float, rng: np.random.Generator,
+                patches: Pixels, m: int) -> DropDecision:
+    """A drop mode run on the grid of m x m windows, so whole windows go (an encoder that merges
+    each window still finds it complete or absent).
+
+    Counted in windows: the drop count is drop_count(rate, windows); min_keep, block.min_area and a
+    grid stride are read as ceil(min_keep / m^2) windows, ceil(min_area / m^2) windows and every
+    k-th window row and column. Content mode scores each window by the variance of all its values.
+    The decision's keep mask and block rectangles are in tokens, like any other decision's."""
+    gh, gw = grid
+    if gh % m or gw % m:
+        raise ValueError(f"grid {gh}x{gw} is not made of {m}x{m} windows: both sides must be multiples of "
+                         f"sizing.grid_multiple={m}")
+    wh, ww = gh // m, gw // m
+    per = m * m
+    wcfg = cfg.model_copy(update={"min_keep": -(-cfg.min_keep // per),
+                                  "block": cfg.block.model_copy(update={"min_area": -(-cfg.block.min_area // per)})})
+
+    def window_values() -> np.ndarray:
+        x = patches()
+        return np.ascontiguousarray(x.reshape(wh, m, ww, m, -1).transpose(0, 2, 1, 3, 4).reshape(wh * ww, -1))
+
+    keep_w, blocks_w = mode((wh, ww), rate, wcfg, rng, window_values)
+    keep = np.repeat(np.repeat(np.asarray(keep_w, bool).reshape(wh, ww), m, axis=0), m, axis=1).reshape(-1)
+    blocks = tuple((t * m, left * m, h * m, w * m) for t, left, h, w in blocks_w)
+    return DropDecision(keep, rate, blocks, cfg.mode)
 
 
 def apply_drop(ps: PatchSet, decision: DropDecision, how: str) -> PatchSet:
@@ -456,23 +548,31 @@ def apply_drop(ps: PatchSet, decision: DropDecision, how: str) -> PatchSet:
     whose tokens were reordered works too. how "remove": only kept tokens stay (patches, coords and
     any `masked` flags filtered, token order kept). how "mask": every token stays and
     `masked` = not kept (OR-ed with flags already there). Both write meta["drop"] =
-    {"mode", "rate", "kept", "total"} (kept: tokens kept or visible; total: tokens before).
+    {"mode", "rate", "kept", "total"} (kept: tokens kept or visible; total: tokens before). Every
+    other field (key, label, text, ...) is carried over as it is.
     """
     if how not in ("remove", "mask"):
         raise ValueError(f"how must be 'remove' or 'mask', as in drop.output (got {how!r})")
     gh, gw = ps.grid
     keep = np.asarray(decision.keep, dtype=bool)
-    if keep.shape != (gh * gw,):
+    places = ps.frames * gh * gw if ps.times is not None else gh * gw
+    if keep.shape != (places,):
         raise ValueError(
-            f"PatchSet {ps.key!r}: drop decision has {keep.size} places, grid {gh}x{gw} has {gh * gw}"
+            f"PatchSet {ps.key!r}: drop decision has {keep.size} places, grid {gh}x{gw}"
+            + (f" x {ps.frames} slices" if ps.times is not None else "") + f" has {places}"
         )
-    token_keep = keep[ps.coords[:, 0].astype(np.int64) * gw + ps.coords[:, 1]]
+    flat = ps.coords[:, 0].astype(np.int64) * gw + ps.coords[:, 1]
+    if ps.times is not None:
+        flat = flat + ps.times.astype(np.int64) * (gh * gw)
+    token_keep = keep[flat]
     meta = {**ps.meta, "drop": {"mode": decision.mode, "rate": float(decision.rate),
                                 "kept": int(np.count_nonzero(token_keep)), "total": ps.num_tokens}}
     if how == "mask":
         masked = ~token_keep if ps.masked is None else (ps.masked | ~token_keep)
-        return PatchSet(ps.patches, ps.coords, ps.grid, ps.key, ps.label, meta, masked)
+        return replace(ps, meta=meta, masked=masked)
     if token_keep.all():
-        return PatchSet(ps.patches, ps.coords, ps.grid, ps.key, ps.label, meta, ps.masked)
+        return replace(ps, meta=meta)
     masked = None if ps.masked is None else ps.masked[token_keep]
-    return PatchSet(ps.patches[token_keep], ps.coords[token_keep], ps.grid, ps.key, ps.label, meta, masked)
+    times = None if ps.times is None else ps.times[token_keep]
+    return replace(ps, patches=ps.patches[token_keep], coords=ps.coords[token_keep], meta=meta, masked=masked,
+                   times=times)

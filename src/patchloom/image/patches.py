@@ -24,6 +24,11 @@ class PatchSet:
     label: int | None = None
     meta: dict[str, Any] = field(default_factory=dict)
     masked: np.ndarray | None = None  # bool [N]: True = hidden from the model (drop output: mask)
+    text: str = ""  # the sample's text (source.text_key), "" when it has none
+    # int32 [N]: the temporal slice of each token (0 for a still image) when the recipe is temporal
+    # (clips or sizing.temporal_patch > 1), else None; `frames` is the number of slices (1 for images).
+    times: np.ndarray | None = None
+    frames: int = 1
 
     def __post_init__(self) -> None:
         if self.patches.ndim != 2 or self.coords.shape != (self.patches.shape[0], 2):
@@ -33,6 +38,8 @@ class PatchSet:
             )
         if self.masked is not None and self.masked.shape != (self.patches.shape[0],):
             raise ValueError(f"PatchSet {self.key!r}: masked must be bool [N] (got {self.masked.shape})")
+        if self.times is not None and self.times.shape != (self.patches.shape[0],):
+            raise ValueError(f"PatchSet {self.key!r}: times must be int [N] (got {self.times.shape})")
 
     @property
     def num_tokens(self) -> int:
@@ -56,6 +63,26 @@ def patchify(image: np.ndarray, patch_size: int) -> np.ndarray:
     )
 
 
+def tubeletify(frames: np.ndarray, patch_size: int, temporal_patch: int) -> np.ndarray:
+    """[F, H, W, C] frames (F a multiple of t, H and W of p) -> [(F/t)*(H/p)*(W/p), t*p*p*C] tubelets:
+    token k of slice s covers frames s*t..s*t+t-1 of one p x p patch, flattened in (frame, patch_row,
+    patch_col, channel) order; slices one after the other, raster order inside each."""
+    if frames.ndim != 4:
+        raise ValueError(f"tubeletify needs [F, H, W, C] frames (got shape {frames.shape})")
+    f, h, w, c = frames.shape
+    p, t = patch_size, temporal_patch
+    if f % t or h % p or w % p:
+        raise ValueError(f"{f} frames of {w}x{h} do not split into tubelets of {t} frames x {p}x{p} pixels")
+    s, gh, gw = f // t, h // p, w // p
+    x = frames.reshape(s, t, gh, p, gw, p, c).transpose(0, 2, 4, 1, 3, 5, 6)
+    return np.ascontiguousarray(x.reshape(s * gh * gw, t * p * p * c))
+
+
+def slice_times(slices: int, tokens_per_slice: int) -> np.ndarray:
+    """int32 [slices * tokens_per_slice]: the slice of each token of a clip in slice-major order."""
+    return np.repeat(np.arange(slices, dtype=np.int32), tokens_per_slice)
+
+
 def unpatchify(patches: np.ndarray, coords: np.ndarray, grid: tuple[int, int], patch_size: int,
                channels: int = 3, fill: int | float = 0) -> np.ndarray:
     """Place patches back at their coords on a [gh*p, gw*p, C] canvas (missing cells get `fill`)."""
@@ -70,6 +97,17 @@ def grid_coords(grid_h: int, grid_w: int) -> np.ndarray:
     """[gh*gw, 2] int32 (row, col) in raster order."""
     rows, cols = np.divmod(np.arange(grid_h * grid_w, dtype=np.int32), np.int32(grid_w))
     return np.stack([rows, cols], axis=1)
+
+
+def window_order(grid_h: int, grid_w: int, m: int) -> np.ndarray:
+    """int64 [gh*gw]: raster indices in window order, so `patches[window_order(...)]` puts the tokens
+    of each m x m window together (windows in raster order, raster order inside each window).
+    Both sides must be multiples of m (sizing.grid_multiple makes them so)."""
+    if m < 1 or grid_h % m or grid_w % m:
+        raise ValueError(f"grid {grid_h}x{grid_w} is not made of {m}x{m} windows: both sides must be multiples "
+                         f"of sizing.grid_multiple={m}")
+    idx = np.arange(grid_h * grid_w, dtype=np.int64).reshape(grid_h // m, m, grid_w // m, m)
+    return idx.transpose(0, 2, 1, 3).reshape(-1)
 
 
 def normalize(patches: np.ndarray, mean: tuple[float, ...], std: tuple[float, ...], dtype: str) -> np.ndarray:

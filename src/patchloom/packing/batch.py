@@ -23,6 +23,31 @@ class PackedBatch:
     labels: np.ndarray  # [B, S] int64
     keys: list[list[str]] = field(default_factory=list)
     masked: np.ndarray | None = None  # [B, L] bool, True = token hidden (drop output: mask); else None
+    texts: list[list[str]] = field(default_factory=list)  # like keys: each segment's text, "" if none
+    # With a text_encoder (packing/text.py): int32 [B, S, T] token ids padded with 0 after each text's
+    # text_lengths int32 [B, S] tokens (0 where no image); else None.
+    text_tokens: np.ndarray | None = None
+    text_lengths: np.ndarray | None = None
+    # int32 [B, S]: each segment's sample, 1-based within its row (0 where absent); the images of a
+    # multi-image sample share one and are adjacent. None when built: one sample per segment.
+    groups: np.ndarray | None = None
+    # With a temporal recipe (clips, or sizing.temporal_patch > 1): times int32 [B, L], the temporal
+    # slice of each token (0 for images and padding), and frames int32 [B, S], the slices of each
+    # segment (1 for an image, 0 where absent). Both None otherwise.
+    times: np.ndarray | None = None
+    frames: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        if (self.times is None) != (self.frames is None):
+            raise ValueError("times and frames come together: give both or neither")
+        if self.groups is None:  # built without groups: every segment is its own sample
+            slots = np.arange(1, self.grids.shape[1] + 1, dtype=np.int32)
+            self.groups = np.where(self.grids[..., 0] > 0, slots, 0).astype(np.int32)
+        if not self.texts:  # built without texts: every segment has none
+            self.texts = [[""] * len(row) for row in self.keys]
+        elif [len(t) for t in self.texts] != [len(k) for k in self.keys]:
+            raise ValueError(f"texts must hold one string per segment, like keys (got rows of "
+                             f"{[len(t) for t in self.texts]} texts for {[len(k) for k in self.keys]} keys)")
 
     @property
     def rows(self) -> int:
@@ -39,6 +64,11 @@ class PackedBatch:
     @property
     def num_images(self) -> int:
         return sum(len(k) for k in self.keys)
+
+    @property
+    def num_samples(self) -> int:
+        """Samples in the batch (a multi-image sample counts once): the highest group of each row, summed."""
+        return int(self.groups.max(axis=1, initial=0).sum())
 
     @property
     def num_tokens(self) -> int:
@@ -107,7 +137,9 @@ class PackedBatch:
         return sums / np.maximum(counts, 1.0)
 
     def to_torch(self) -> dict[str, Any]:
-        """The arrays as torch tensors (sharing memory where possible) plus the keys list."""
+        """The arrays as torch tensors (sharing memory where possible) plus the keys and texts lists
+        (text_tokens and text_lengths are None without a text encoder, like masked without a mask, and
+        times and frames without a temporal recipe)."""
         import torch
 
         return {
@@ -116,17 +148,25 @@ class PackedBatch:
             "coords": torch.from_numpy(self.coords),
             "grids": torch.from_numpy(self.grids),
             "labels": torch.from_numpy(self.labels),
+            "groups": torch.from_numpy(self.groups),
             "keys": self.keys,
             "masked": None if self.masked is None else torch.from_numpy(self.masked),
+            "texts": self.texts,
+            "text_tokens": None if self.text_tokens is None else torch.from_numpy(self.text_tokens),
+            "text_lengths": None if self.text_lengths is None else torch.from_numpy(self.text_lengths),
+            "times": None if self.times is None else torch.from_numpy(self.times),
+            "frames": None if self.frames is None else torch.from_numpy(self.frames),
         }
 
     def to_arrays(self) -> dict[str, np.ndarray]:
-        """The five arrays by name (what a pre-packed shard stores)."""
+        """The arrays by name (a pre-packed shard stores those in store.format.ARRAYS)."""
         return {
             "patches": self.patches,
             "segment_ids": self.segment_ids,
             "coords": self.coords,
             "grids": self.grids,
             "labels": self.labels,
+            "groups": self.groups,
             **({"masked": self.masked} if self.masked is not None else {}),
+            **({"times": self.times, "frames": self.frames} if self.times is not None else {}),
         }

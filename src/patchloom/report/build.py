@@ -64,6 +64,20 @@ def cells(ps: PatchSet) -> tuple[np.ndarray, np.ndarray]:
     return present, masked
 
 
+#: Characters of a sample's text shown in the report (the rest is cut, with an ellipsis).
+TEXT_SHOWN = 400
+
+
+def text_html(text: str, recipe: Recipe) -> str:
+    """A sample's text for the page ("" when the recipe reads none): quoted, cut to TEXT_SHOWN."""
+    if recipe.source.text_key is None:
+        return ""
+    if not text:
+        return '<span class="muted">(no text)</span>'
+    shown = text if len(text) <= TEXT_SHOWN else text[: TEXT_SHOWN - 1] + "…"
+    return f"“{esc(shown)}”"
+
+
 def _percentile(values: np.ndarray, q: float) -> float:
     return float(np.percentile(values, q)) if values.size else 0.0
 
@@ -129,6 +143,38 @@ def _display_fn(recipe: Recipe):
     return partial(render.patches_to_display, mean=out.mean, std=out.std, standardized=standardized)
 
 
+def _clip_panels(ps: PatchSet, frames: np.ndarray, stem: str, w: _Writer) -> str:
+    """A clip's two extra panels: the strip of its chosen frames (after augmentation), and the
+    token-time map (each temporal slice's first frame with the cells that slice kept; dropped cells
+    shaded, masked ones hatched)."""
+    clip = ps.meta.get("clip", {})
+    t = int(clip.get("temporal_patch", 1))
+    picks = clip.get("frames", list(range(len(frames))))
+    side = max(24, PANEL // 3)
+    strip = render.flow([render.fit(f, side) for f in frames], max_width=3 * PANEL, gap=3)
+    name, pw_, ph_ = w.png(f"{stem}-frames.png", strip)
+    f5 = figure(name, pw_, ph_, "chosen frames",
+                f"{len(picks)} frames of {clip.get('of', '?')}: {', '.join(map(str, picks))}")
+    gh, gw = ps.grid
+    c = ps.coords.astype(np.int64)
+    tiles = []
+    for s in range(ps.frames):
+        sel = ps.times == s
+        present = np.zeros((gh, gw), bool)
+        present[c[sel, 0], c[sel, 1]] = True
+        masked = np.zeros((gh, gw), bool)
+        if ps.masked is not None:
+            masked[c[sel, 0], c[sel, 1]] = ps.masked[sel]
+        shown = render.fit(frames[s * t], side)
+        tiles.append(render.draw_grid(render.drop_map(shown, (gh, gw), present, masked), (gh, gw), amount=0.3))
+    name, pw_, ph_ = w.png(f"{stem}-times.png", render.flow(tiles, max_width=3 * PANEL, gap=3))
+    sent = np.bincount(ps.times, minlength=ps.frames).tolist()
+    f6 = figure(name, pw_, ph_, "token-time map",
+                f"{ps.frames} slices of {t} frame{'s' if t > 1 else ''}, tokens sent per slice: "
+                f"{', '.join(map(str, sent))} of {gh * gw}")
+    return f5 + f6
+
+
 def _sample_card(t: Traced, n: int, recipe: Recipe, w: _Writer) -> str:
     head = f'<h3>{n}. <code>{esc(t.key)}</code> <span class="muted">{esc(Path(t.shard).name)} #{t.index}, ' \
            f"stream position {t.position}</span></h3>"
@@ -186,6 +232,7 @@ def _sample_card(t: Traced, n: int, recipe: Recipe, w: _Writer) -> str:
     f4 = figure(name, pw_, ph_, "token map",
                 f"{ps.num_tokens} of {total} tokens sent; {dropped} dropped (shaded), {hidden} masked (hatched)")
 
+    clip_html = _clip_panels(ps, tr["frames"], stem, w) if tr.get("frames") is not None else ""
     left, top, right, bottom = plan.crop
     drop = meta.get("drop")
     rows = [
@@ -201,11 +248,16 @@ def _sample_card(t: Traced, n: int, recipe: Recipe, w: _Writer) -> str:
         ("drop", (f"{drop['mode']}, target {drop['rate']:.3f}, "
                   + ("visible" if recipe.drop.output == "mask" else "kept") + f" {drop['kept']}/{drop['total']}")
          if drop else "none"),
+        *([("clip", f"{meta['clip']['slices']} slices × {plan.grid_h}×{plan.grid_w}, frames "
+                    f"{', '.join(map(str, meta['clip']['frames']))} of {meta['clip']['of']} "
+                    f"({meta['clip']['fps']:g} fps)")] if "clip" in meta else []),
         ("tokens sent", str(ps.num_tokens)),
         ("same as pipeline", yes_no(t.matches_stream, "yes, identical tokens", "NO: tokens differ")),
     ]
-    return (f'<div class="card" data-sample="{esc(t.key)}">{head}<div class="panels">{f1}{f2}{f3}{f4}'
-            f'{table(rows, "plan")}</div></div>')
+    text = text_html(ps.text, recipe)
+    text = f'<p class="text" data-text="{esc(ps.text)}">{text}</p>' if text else ""
+    return (f'<div class="card" data-sample="{esc(t.key)}">{head}<div class="panels">{f1}{f2}{f3}{f4}{clip_html}'
+            f'{table(rows, "plan")}</div>{text}</div>')
 
 
 def _rows_section(col: Collected, recipe: Recipe, w: _Writer) -> str:
@@ -219,8 +271,11 @@ def _rows_section(col: Collected, recipe: Recipe, w: _Writer) -> str:
             picture, items = render.row_picture(batch, r, p, display=display)
             name, pw_, ph_ = w.png(f"row-b{b}-r{r}.png", picture)
             pad = 1 - np.count_nonzero(batch.segment_ids[r]) / batch.seq_len
+            texts = batch.texts[r]
             segs = "".join(f'{swatch(palette.segment_colour(it.segment))}<code>{esc(it.key)}</code> '
-                           f"{it.grid[0]}×{it.grid[1]}, {it.tokens} tok" for it in items)
+                           f"{it.grid[0]}×{it.grid[1]}, {it.tokens} tok{render.group_note(items, it)}"
+                           + (f" {text_html(texts[it.segment - 1], recipe)}" if recipe.source.text_key else "")
+                           for it in items)
             parts.append(f'<div class="row" data-row="{b}-{r}">{img(name, pw_, ph_, f"batch {b} row {r}")}'
                          f'<div class="segs">row {r}: {len(items)} images, {100 * pad:.1f} % padding'
                          f"{swatch(palette.PADDING)}padding{segs}</div></div>")

@@ -185,7 +185,7 @@ def collect(recipe: Recipe, *, shards=None, epoch: int = 0, samples: int = 12, s
     def on_sample(ps: PatchSet) -> None:
         images.append(image_facts(ps))
         ref = (str(ps.meta.get("shard", "")), int(ps.meta.get("index", -1)))
-        if ref in chosen:
+        if ref in chosen and not ps.meta.get("image"):  # a multi-image sample is traced by its first image
             stream_digests[ref] = digest(ps)
 
     pipe = Pipeline(recipe, shards, epoch=epoch, allow_shell=allow_shell, on_record=on_record,

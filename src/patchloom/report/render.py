@@ -212,6 +212,7 @@ class RowImage:
     image: np.ndarray  # [gh*p, gw*p, C] (display values); cells with no token hold `fill`
     present: np.ndarray  # bool [gh, gw]: a token of this image sits at that cell
     masked: np.ndarray  # bool [gh, gw]: that token is flagged masked in the batch
+    group: int = 0  # the image's sample within the row (PackedBatch.groups); shared by a sample's images
 
 
 def reconstruct_row(batch: PackedBatch, row: int, patch_size: int, *, display=None,
@@ -230,7 +231,11 @@ def reconstruct_row(batch: PackedBatch, row: int, patch_size: int, *, display=No
         if idx.size == 0:
             continue
         gh, gw = (int(v) for v in batch.grids[row, j - 1])
+        if batch.times is not None:  # a clip shows its first slice; a tubelet token its first frame
+            idx = idx[batch.times[row, idx] == 0]
         values = batch.patches[row, idx]
+        if batch.times is not None:
+            values = values[:, : p * p * 3]
         if display is not None:
             values = display(values)
         channels = values.shape[1] // (p * p)
@@ -242,8 +247,17 @@ def reconstruct_row(batch: PackedBatch, row: int, patch_size: int, *, display=No
         if batch.masked is not None:
             masked[coords[:, 0], coords[:, 1]] = batch.masked[row, idx]
         key = batch.keys[row][j - 1] if row < len(batch.keys) and j - 1 < len(batch.keys[row]) else ""
-        out.append(RowImage(j, key, (gh, gw), int(idx.size), image, present, masked))
+        tokens = int(np.count_nonzero(seg == j))
+        out.append(RowImage(j, key, (gh, gw), tokens, image, present, masked, int(batch.groups[row, j - 1])))
     return out
+
+
+def group_note(items: Sequence[RowImage], it: RowImage) -> str:
+    """', image 2 of 3 of group 4' for an image of a multi-image sample, '' for a one-image sample."""
+    same = [x.segment for x in items if x.group == it.group]
+    if len(same) < 2:
+        return ""
+    return f", image {same.index(it.segment) + 1} of {len(same)} of group {it.group}"
 
 
 def frame(image: np.ndarray, colour: RGB, width: int = 3) -> np.ndarray:
@@ -294,10 +308,24 @@ def stack(pictures: Sequence[np.ndarray], *, gap: int = 8) -> np.ndarray:
     return out
 
 
+def _join_groups(tiles: list[np.ndarray], groups: list[int], max_width: int) -> list[np.ndarray]:
+    """The tiles of each multi-image sample side by side as one tile, in a thin black frame, so a
+    sample's images stay together on one line of the row picture."""
+    out: list[tuple[int, list[np.ndarray]]] = []
+    for i, (tile, g) in enumerate(zip(tiles, groups)):
+        if i > 0 and g == groups[i - 1]:
+            out[-1][1].append(tile)
+        else:
+            out.append((g, [tile]))
+    return [parts[0] if len(parts) == 1 else frame(flow(parts, max_width=max_width, gap=2), palette.BLACK, 2)
+            for _, parts in out]
+
+
 def row_picture(batch: PackedBatch, row: int, patch_size: int, *, display=None, image_height: int = 96,
                 max_width: int = 1024) -> tuple[np.ndarray, list[RowImage]]:
     """A packed row as one picture: its segment strip on top, then each of its images rebuilt from
-    its tokens (framed in its segment's colour; dropped cells shaded, masked ones hatched)."""
+    its tokens (framed in its segment's colour; dropped cells shaded, masked ones hatched). The
+    images of a multi-image sample sit side by side in one black-framed tile."""
     strip = segment_strip(batch.segment_ids[row])
     items = reconstruct_row(batch, row, patch_size, display=display)
     tiles = []
@@ -313,5 +341,6 @@ def row_picture(batch: PackedBatch, row: int, patch_size: int, *, display=None, 
                                                                     Image.Resampling.BOX))
         shown = drop_map(shown, it.grid, it.present, it.masked)
         tiles.append(frame(shown, palette.segment_colour(it.segment), 3))
+    tiles = _join_groups(tiles, [it.group for it in items], max_width)
     parts = [strip] + ([flow(tiles, max_width=max(max_width, strip.shape[1]))] if tiles else [])
     return stack(parts, gap=6), items
