@@ -6,14 +6,15 @@ from __future__ import annotations
 from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
-from .order import ShardTask
-from .specs import SourceError
-from .tar import Record, ShardError, read_shard, shard_error
+from .sources import read_task
+from .specs import Fields, ShardTask, SourceError
+from .tar import Record, ShardError, shard_error
 
 
 def fetch_records(refs: Sequence[tuple[str, int]], *, allow_shell: bool = False,
-                  max_sample_bytes: int | None = None) -> list[Record]:
-    """The records at (shard url, index) positions, in the order given (to rebuild buffers on resume)."""
+                  max_sample_bytes: int | None = None, fields: Fields | None = None) -> list[Record]:
+    """The records at (shard url, index) positions, in the order given (to rebuild buffers on resume);
+    `fields` as the reader that read them had (for Parquet files and image folders)."""
     by_url: dict[str, set[int]] = {}
     for url, index in refs:
         by_url.setdefault(url, set()).add(int(index))
@@ -21,8 +22,8 @@ def fetch_records(refs: Sequence[tuple[str, int]], *, allow_shell: bool = False,
     failures: dict[str, ShardError] = {}
     for url, indices in by_url.items():
         try:
-            for rec in read_shard(ShardTask(url), allow_shell=allow_shell, wanted=indices,
-                                  max_sample_bytes=max_sample_bytes):
+            for rec in read_task(ShardTask(url), allow_shell=allow_shell, wanted=indices,
+                                 max_sample_bytes=max_sample_bytes, fields=fields):
                 found[(url, rec.index)] = rec
         except ShardError as exc:  # records read before the failure still count; missing ones raise below
             failures[url] = exc
@@ -42,19 +43,22 @@ def read_tasks(
     allow_shell: bool = False,
     on_shard_error: Callable[[str, Exception], None] | None = None,
     max_sample_bytes: int | None = None,
+    fields: Fields | None = None,
 ) -> Iterator[Record]:
     """Records of several shard tasks in order. A shard that fails mid-read raises ShardError, or is
     reported to on_shard_error (the rest of that shard is lost and the callback records it)."""
     yield from ReaderCursor(tasks, allow_shell=allow_shell, on_shard_error=on_shard_error,
-                            max_sample_bytes=max_sample_bytes)
+                            max_sample_bytes=max_sample_bytes, fields=fields)
 
 
 class ReaderCursor:
     """One reader's walk over its shard tasks, with a JSON-able position for exact resume.
 
     The position is (pass, task, index): the next sample index to read in task `task` of pass
-    `pass`. With `cycle`, the share is read again (pass 1, 2, ...) when it runs out, for
-    equalised epochs. `limit` caps the records it yields in total (an epoch defined in samples).
+    `pass` (for a Parquet row group task: the file is the task's url, the row group its unit, the
+    index the row in the file). With `cycle`, the share is read again (pass 1, 2, ...) when it
+    runs out, for equalised epochs. `limit` caps the records it yields in total (an epoch defined
+    in samples). `fields` names the members Parquet files and image folders are read for.
     """
 
     def __init__(
@@ -66,8 +70,10 @@ class ReaderCursor:
         cycle: bool = False,
         limit: int | None = None,
         max_sample_bytes: int | None = None,
+        fields: Fields | None = None,
     ) -> None:
         self.tasks = list(tasks)
+        self.fields = fields
         self.allow_shell = allow_shell
         self.on_shard_error = on_shard_error
         self.max_sample_bytes = max_sample_bytes
@@ -97,8 +103,8 @@ class ReaderCursor:
             while self.task < len(self.tasks):
                 task = self.tasks[self.task]
                 try:
-                    for rec in read_shard(task, allow_shell=self.allow_shell, start=self.index,
-                                          max_sample_bytes=self.max_sample_bytes):
+                    for rec in read_task(task, allow_shell=self.allow_shell, start=self.index,
+                                         max_sample_bytes=self.max_sample_bytes, fields=self.fields):
                         self.index = rec.index + 1
                         self.count += 1
                         produced += 1

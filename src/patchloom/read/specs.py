@@ -1,5 +1,6 @@
-"""Shard specs -> shard URLs (paths, globs, brace ranges, URLs, refused shell commands), and the
-identity a resume state keeps of each shard to notice that it changed."""
+"""Shard specs -> shard URLs (paths, globs, brace ranges, URLs, refused shell commands; tar shards,
+Parquet files and image folders), what one reader task reads (ShardTask), which members a sample
+needs (Fields), and the identity a resume state keeps of each file to notice that it changed."""
 
 from __future__ import annotations
 
@@ -8,23 +9,91 @@ import hashlib
 import os
 import stat
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 import braceexpand
 
 from ..errors import PatchloomError
 
 SHELL_PREFIXES = ("pipe:",)
+#: The recipe's default `source.image_keys` (recipe/schema.py; a test keeps the two equal): the image
+#: extensions a folder is searched for when the caller names none.
+DEFAULT_IMAGE_KEYS = ("jpg", "jpeg", "png", "webp", "gif", "bmp", "tif", "tiff")
+PARQUET_SUFFIX = ".parquet"
 
 
 class SourceError(PatchloomError, ValueError):
     """A shard spec or shard that cannot be read; the message names it and what to change."""
 
 
-def expand_shards(spec: str | Sequence[str] | None, *, allow_shell: bool = False) -> list[str]:
+@dataclass(slots=True, frozen=True)
+class ShardTask:
+    """Read `url`, keeping the samples whose index i satisfies i % parts == part.
+
+    `unit` narrows the task to one piece of the source: a row group of a Parquet file, a chunk of
+    `FOLDER_CHUNK` samples of an image folder; -1 is the whole source (a tar shard always is).
+    """
+
+    url: str
+    part: int = 0
+    parts: int = 1
+    unit: int = -1
+
+
+@dataclass(slots=True, frozen=True)
+class Fields:
+    """The members a sample needs, for sources that hold more than them: the Parquet columns to read
+    (the first of `image_keys` present, the label and text columns) and an image folder's image
+    extensions. Readers given None read every column (and folders use DEFAULT_IMAGE_KEYS)."""
+
+    image_keys: tuple[str, ...] = DEFAULT_IMAGE_KEYS
+    label_key: str | None = None
+    text_key: str | None = None
+
+
+def split_ext(name: str) -> tuple[str, str]:
+    """(stem, extension) of a file name in an image folder: the extension is what follows the last
+    dot, lower-cased ("" for a name without one: never a sample's member)."""
+    stem, dot, ext = name.rpartition(".")
+    if not dot or not stem or "/" in ext:
+        return name, ""
+    return stem, ext.lower()
+
+
+def is_hidden(name: str) -> bool:
+    """Names starting with a dot (`.DS_Store`, `.cache/`) are not read from image folders."""
+    return name.startswith(".")
+
+
+def folder_has_images(path: str, image_keys: Sequence[str]) -> bool:
+    """True when the folder (or a sub-folder, links not followed, hidden entries skipped) holds a file
+    with one of the image extensions; stops at the first one (this is no listing)."""
+    keys = {k.lower() for k in image_keys}
+    stack = [path]
+    while stack:
+        try:
+            with os.scandir(stack.pop()) as it:
+                for entry in it:
+                    if is_hidden(entry.name):
+                        continue
+                    if entry.is_dir(follow_symlinks=False):
+                        stack.append(entry.path)
+                    elif split_ext(entry.name)[1] in keys:
+                        return True
+        except OSError:
+            continue
+    return False
+
+
+def expand_shards(spec: str | Sequence[str] | None, *, allow_shell: bool = False,
+                  image_keys: Sequence[str] | None = None) -> list[str]:
     """Shard spec (path, glob, brace range `part-{000..015}.tar`, URL, or a list of them) -> URLs.
 
-    Shell-command URLs (`pipe:`) run a program: they are refused unless allow_shell is True.
+    Tar shards, `.parquet` files and image folders (a folder holding image files with one of
+    `image_keys`, default DEFAULT_IMAGE_KEYS, in it or its sub-folders) may be mixed. Shell-command
+    URLs (`pipe:`) run a program: they are refused unless allow_shell is True.
     """
+    keys = tuple(image_keys) if image_keys is not None else DEFAULT_IMAGE_KEYS
     if spec is None:
         raise SourceError("no shards given: set source.shards in the recipe or pass shards=")
     items = [spec] if isinstance(spec, str) else list(spec)
@@ -51,24 +120,45 @@ def expand_shards(spec: str | Sequence[str] | None, *, allow_shell: bool = False
                 matches = sorted(glob.glob(os.path.expanduser(expanded)))
                 if not matches:
                     raise SourceError(f"shard glob {expanded!r} matches no file")
-                folders = [m for m in matches if os.path.isdir(m)]
+                folders = [m for m in matches if os.path.isdir(m) and not folder_has_images(m, keys)]
                 if folders:
-                    raise SourceError(f"shard glob {expanded!r} matches a folder: " + _folder_message(folders[0]))
+                    raise SourceError(f"shard glob {expanded!r} matches a folder: " + _folder_message(folders[0], keys))
                 out.extend(matches)
             else:
                 path = os.path.expanduser(expanded.removeprefix("file:"))
                 if os.path.isdir(path):
-                    raise SourceError(_folder_message(path))
-                if not os.path.isfile(path):
+                    if not folder_has_images(path, keys):
+                        raise SourceError(_folder_message(path, keys))
+                    path = path.rstrip(os.sep) or path  # one name per folder: `photos/` is `photos`
+                elif not os.path.isfile(path):
                     raise SourceError(_missing_message(path, item))
                 out.append(path)
+    _check_parquet(out)
     return out
 
 
-def _folder_message(path: str) -> str:
+def _check_parquet(urls: list[str]) -> None:
+    """Parquet files are read from local paths with pyarrow (the `parquet` extra): say so up front."""
+    parquet = [u for u in urls if u.lower().endswith(PARQUET_SUFFIX) and not u.startswith(SHELL_PREFIXES)]
+    if not parquet:
+        return
+    remote = next((u for u in parquet if "://" in u), None)
+    if remote is not None:
+        raise SourceError(f"Parquet file {remote!r} is a URL: patchloom reads Parquet files from local paths (a "
+                          "mounted file system is fine); copy it, or write it as tar shards")
+    from ..extras import require
+
+    require("pyarrow", "reading Parquet files")
+
+
+def _folder_message(path: str, image_keys: Sequence[str] = DEFAULT_IMAGE_KEYS) -> str:
     tars = glob.glob(os.path.join(glob.escape(path), "*.tar"))
     pattern = os.path.join(path, "*.tar")
-    return f"shard path {path!r} is a folder; did you mean {pattern!r}? (it holds {len(tars)} .tar files)"
+    if tars:
+        return f"shard path {path!r} is a folder; did you mean {pattern!r}? (it holds {len(tars)} .tar files)"
+    return (f"shard path {path!r} is a folder without image files (looked for {', '.join(image_keys)} in it and "
+            "its sub-folders) and without .tar files: name the image extensions in source.image_keys, or give "
+            "the shard files themselves")
 
 
 def _missing_message(path: str, item: str) -> str:
@@ -86,7 +176,7 @@ def _missing_message(path: str, item: str) -> str:
 IDENTITY_PROBE_BYTES = 64 * 1024
 
 
-def shard_identity(url: str) -> dict:
+def file_identity(url: str) -> dict:
     """What a saved state remembers of a shard to notice it changed: its URL, and for a local file
     its size, modification time and a hash of its first and last 64 KiB (None where unknown:
     URLs, `pipe:` commands, missing files)."""
@@ -112,7 +202,8 @@ def shard_identity(url: str) -> dict:
 
 def describe_identity_change(saved: Sequence[dict], now: Sequence[dict]) -> str | None:
     """One line naming the first difference between two lists of `shard_identity` (reordered,
-    swapped, rewritten or gone), or None when they match."""
+    swapped, rewritten or gone), or None when they match. (An image folder's "size" is its file
+    count and its "probe" a hash of its file names.)"""
     then_urls = [str(s.get("url")) for s in saved]
     now_urls = [str(s.get("url")) for s in now]
     if then_urls != now_urls:

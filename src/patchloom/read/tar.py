@@ -18,8 +18,7 @@ import tempfile
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 
-from .order import ShardTask
-from .specs import SHELL_PREFIXES, SourceError
+from .specs import SHELL_PREFIXES, ShardTask, SourceError
 
 
 class ShardError(SourceError):

@@ -1,5 +1,6 @@
 """The input shards of a pack: the spec expanded as pack expands it, and each input's size and sha256,
-which the manifest records and `verify` checks again."""
+which the manifest records and `verify` checks again. An image folder is one input whose sha256 is
+taken over its files, each hashed (`read.folder_digest`), so a changed, added or removed file shows."""
 
 from __future__ import annotations
 
@@ -9,7 +10,7 @@ from typing import Any
 
 import braceexpand
 
-from ..read import SHELL_PREFIXES, expand_shards, open_shard
+from ..read import SHELL_PREFIXES, expand_shards, folder_digest, open_shard, source_kind
 from .format import open_regular
 
 __all__ = ["hash_input", "hash_inputs", "input_paths", "is_local", "spec_items"]
@@ -21,7 +22,10 @@ def is_local(url: str) -> bool:
 
 
 def hash_input(url: str, *, allow_shell: bool) -> tuple[int, str]:
-    """(bytes, sha256) of a shard: a local one only when it is a regular file, a URL through open_shard."""
+    """(bytes, sha256) of a shard: a local one only when it is a regular file (or an image folder:
+    its files, each hashed), a URL through open_shard."""
+    if is_local(url) and source_kind(url) == "folder":
+        return folder_digest(url)
     h = hashlib.sha256()
     size = 0
     if is_local(url):
@@ -37,9 +41,10 @@ def hash_input(url: str, *, allow_shell: bool) -> tuple[int, str]:
     return size, h.hexdigest()
 
 
-def input_paths(spec: str | list[str] | None, *, allow_shell: bool) -> list[str]:
-    """Expanded shard list, local paths made absolute (a sample's tokens depend on its key, not its path)."""
-    urls = expand_shards(spec, allow_shell=allow_shell)
+def input_paths(spec: str | list[str] | None, *, allow_shell: bool, image_keys: list[str] | None = None) -> list[str]:
+    """Expanded shard list, local paths made absolute (a sample's tokens depend on its key, not its path);
+    `image_keys` (the recipe's) say which folders are image folders."""
+    urls = expand_shards(spec, allow_shell=allow_shell, image_keys=image_keys)
     return [os.path.abspath(u.removeprefix("file:")) if is_local(u) else u for u in urls]
 
 

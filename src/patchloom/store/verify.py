@@ -84,8 +84,8 @@ def _which(a: dict[str, str] | None, b: dict[str, str] | None) -> str:
     return ", ".join(names) if names else "arrays"
 
 
-def _confirm_inputs(recorded: list[str], spec: str | list[str] | None, *,
-                    allow_shell: bool) -> tuple[set[str], list[str]]:
+def _confirm_inputs(recorded: list[str], spec: str | list[str] | None, *, allow_shell: bool,
+                    image_keys: list[str] | None = None) -> tuple[set[str], list[str]]:
     """(recorded inputs that `spec`, expanded now as pack expanded it, also yields; problems).
 
     verify reads an input only when both agree, so a manifest cannot point it at a path or URL of its
@@ -95,7 +95,7 @@ def _confirm_inputs(recorded: list[str], spec: str | list[str] | None, *,
     now: list[str] = []
     for item in items:
         with contextlib.suppress(SourceError):  # a path gone since: reported as its recorded input below
-            now.extend(input_paths([item], allow_shell=allow_shell))
+            now.extend(input_paths([item], allow_shell=allow_shell, image_keys=image_keys))
     known = set(recorded)
     confirmed = known & set(now)
     problems = [f"input shard {_tail(u)} matches the shard spec but was not an input when packed ({u}): the "
@@ -103,6 +103,13 @@ def _confirm_inputs(recorded: list[str], spec: str | list[str] | None, *,
     if not problems and [u for u in now if u in confirmed] != [u for u in recorded if u in confirmed]:
         problems.append("the manifest lists the inputs in another order than the shard spec gives them")
     return confirmed, problems
+
+
+def _recorded_image_keys(recipe: dict[str, Any]) -> list[str] | None:
+    """The recorded recipe's source.image_keys (which folders are image folders), if it is a list of names."""
+    source = recipe.get("source")
+    keys = source.get("image_keys") if isinstance(source, dict) else None
+    return keys if isinstance(keys, list) and all(isinstance(k, str) for k in keys) else None
 
 
 def _tail(url: str) -> str:
@@ -140,7 +147,8 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
         spec = source.get("shards") if isinstance(source, dict) else None
         spec = spec if isinstance(spec, str) or (isinstance(spec, list) and all(isinstance(s, str) for s in spec)) \
             else None
-    confirmed, spec_problems = _confirm_inputs(recorded, spec, allow_shell=allow_shell)
+    confirmed, spec_problems = _confirm_inputs(recorded, spec, allow_shell=allow_shell,
+                                               image_keys=_recorded_image_keys(man["recipe"]))
     for inp in man["inputs"]:
         url = inp["path"]
         name = _tail(url)

@@ -23,9 +23,10 @@ from typing import Any
 
 from ..image.chain import SkipRatioError
 from ..ledger import EmptyEpochError, Ledger, check_not_empty, check_skip_guard
+from ..read import FOLDER_LABEL_MEMBER, folder_classes, source_kind
 from ..recipe import Recipe
 from .engine_local import progress_bar, run_jobs
-from .format import GROUPS, MANIFEST, StoreError, is_int, is_pack_file, write_atomic
+from .format import COMPRESSIONS, GROUPS, MANIFEST, StoreError, is_int, is_pack_file, write_atomic
 from .inputs import hash_inputs, input_paths, spec_items
 from .manifest import MAX_WORKERS, build_manifest, check_manifest, manifest_bytes
 
@@ -104,6 +105,14 @@ def _no_manifest_note(out: Path) -> Iterator[None]:
 ENGINES = ("local", "ray")
 
 
+def _classes(recipe: Recipe, inputs: list[str]) -> dict[str, list[str]] | None:
+    """With `label_key: folder`, each image folder's class names in index order (the manifest's `classes`)."""
+    if recipe.source.label_key != FOLDER_LABEL_MEMBER:
+        return None
+    found = {url: folder_classes(url, recipe.source.image_keys) for url in inputs if source_kind(url) == "folder"}
+    return found or None
+
+
 def pack_to_dir(
     recipe: Recipe,
     out_dir: str | Path,
@@ -118,6 +127,7 @@ def pack_to_dir(
     engine: str = "local",
     address: str | None = None,
     resume: bool = False,
+    compress: str | None = None,
 ) -> dict[str, Any]:
     """Run the recipe over its shards (or `shards`) and write the batches to `out_dir`; return the manifest.
 
@@ -131,12 +141,15 @@ def pack_to_dir(
     finished). At most os.cpu_count() worker processes run at once; they end if this process dies.
     A run over `source.max_skip_ratio` (all workers' ledgers together) raises SkipRatioError and one
     that packs nothing EmptyEpochError or StoreError, both before any manifest is written.
+    `compress="zstd"` stores every array zstd-compressed (store.format; manifest version 2).
     """
     if not isinstance(recipe, Recipe):
         raise TypeError(f"pack_to_dir needs a Recipe (got {type(recipe).__name__}); use Recipe.from_file(path)")
     if not is_int(workers, 1, MAX_WORKERS) or not is_int(max_batches_per_shard, 1, 2**31 - 1):
         raise StoreError(f"workers must be in 1..{MAX_WORKERS} and max_batches_per_shard >= 1 (got {workers}, "
                          f"{max_batches_per_shard})")
+    if compress is not None and compress not in COMPRESSIONS:
+        raise StoreError(f"unknown compression {compress!r}: use one of {', '.join(COMPRESSIONS)} (or none)")
     if engine not in ENGINES:
         raise StoreError(f"unknown engine {engine!r}; choose one of {', '.join(ENGINES)}")
     if engine == "local" and (address is not None or resume):
@@ -145,12 +158,14 @@ def pack_to_dir(
     if overwrite and resume:
         raise StoreError("choose overwrite (start again) or resume (keep finished groups), not both")
     spec = shards if shards is not None else recipe.source.shards
-    inputs = input_paths(spec, allow_shell=allow_shell)
+    inputs = input_paths(spec, allow_shell=allow_shell, image_keys=recipe.source.image_keys)
     out = Path(out_dir)
     _prepare_out(out, overwrite, resume)
     recipe_dict, fingerprint = recipe.to_dict(), recipe.fingerprint()
     jobs = _pack_jobs(recipe_dict, fingerprint, inputs, out=out, workers=workers, epoch=epoch,
                       allow_shell=allow_shell, per_shard=max_batches_per_shard)
+    if compress is not None:  # only then, so the jobs of an uncompressed pack are what they always were
+        jobs = [{**job, "compress": compress} for job in jobs]
     if engine == "ray":
         from . import engine_ray
 
@@ -166,7 +181,8 @@ def pack_to_dir(
                                meanwhile=lambda: hashed.extend(hash_inputs(inputs, allow_shell=allow_shell)))
     _judge_run(recipe, results, inputs, out)
     man = build_manifest(recipe_dict, fingerprint, epoch=epoch, workers=workers, per_shard=max_batches_per_shard,
-                         inputs=hashed, results=results, input_spec=spec_items(spec))
+                         inputs=hashed, results=results, input_spec=spec_items(spec),
+                         classes=_classes(recipe, inputs))
     data = manifest_bytes(man)
     check_manifest(json.loads(data), out / MANIFEST)  # never write a manifest a reader would refuse
     write_atomic(out / MANIFEST, data)
