@@ -28,6 +28,7 @@ DROP_MODES: dict[str, dict[str, Any]] = {
     "grid 0.75": {"mode": "grid", "rate": 0.75},
     "stripes 0.3": {"mode": "stripes", "rate": 0.3},
     "content 0.5": {"mode": "content", "rate": 0.5},
+    "tube 0.5": {"mode": "tube", "rate": 0.5},
     "block 0.4 (mask)": {"mode": "block", "rate": 0.4, "output": "mask"},
 }
 

@@ -1,5 +1,5 @@
-"""The made-up demo archive (`demo.data`) and the demo recipe (`demo.recipe`)."""
+"""The made-up demo archive (`demo.data`), its clips (`demo.clips`, needs PyAV) and the demo recipes (`demo.recipe`)."""
 
-from .recipe import DEMO_RECIPE
+from .recipe import DEMO_CLIP_RECIPE, DEMO_RECIPE
 
-__all__ = ["DEMO_RECIPE"]
+__all__ = ["DEMO_CLIP_RECIPE", "DEMO_RECIPE"]
