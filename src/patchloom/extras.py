@@ -14,6 +14,8 @@ EXTRAS: dict[str, str] = {
     "matplotlib": "report",
     "torch": "torch",
     "ray": "ray",
+    "pyarrow": "parquet",
+    "av": "video",
 }
 
 

@@ -41,7 +41,8 @@ class Ledger:
     """
 
     read: int = 0
-    emitted: int = 0
+    emitted: int = 0  # samples (a multi-image sample counts once)
+    images_emitted: int = 0  # images of the emitted samples (equals emitted with one image a sample)
     skipped: list[Skip] = field(default_factory=list)
     shard_errors: list[Skip] = field(default_factory=list)
     repeated: int = 0  # reads in top-up passes of an equalised epoch (also counted in `read`)
@@ -51,6 +52,7 @@ class Ledger:
     shards_planned: int = 0  # shard tasks in one pass of this reader's epoch
     shards_read: int = 0  # shard tasks opened in the first pass (failed ones included)
     shards_failed: int = 0  # shard tasks that failed in the first pass
+    texts_truncated: int = 0  # emitted samples whose text had more than text.max_tokens tokens (text_encoder)
 
     @property
     def in_buffer(self) -> int:
@@ -90,6 +92,7 @@ class Ledger:
         return {
             "read": self.read,
             "emitted": self.emitted,
+            "images_emitted": self.images_emitted,
             "skipped": self.skipped_count,
             "in_buffer": self.in_buffer,
             "skip_reasons": self.reasons(),
@@ -98,6 +101,7 @@ class Ledger:
             "repeated": self.repeated,
             "shards_read": self.shards_read,
             "shards_failed": self.shards_failed,
+            "texts_truncated": self.texts_truncated,
         }
 
     def write_jsonl(self, path: str) -> None:
@@ -113,24 +117,28 @@ class Ledger:
     def state_dict(self) -> dict[str, Any]:
         """The counts as JSON-able data of bounded size (for resume): no per-sample list."""
         return {
-            "read": self.read, "emitted": self.emitted, "repeated": self.repeated,
+            "read": self.read, "emitted": self.emitted, "images_emitted": self.images_emitted,
+            "repeated": self.repeated,
             "skipped": self.skipped_count,
             "skip_reasons": dict(self.skip_counts),
             "skip_examples": {k: list(v) for k, v in self.skip_examples.items()},
             "shards_planned": self.shards_planned, "shards_read": self.shards_read,
             "shards_failed": self.shards_failed,
             "shard_errors": [[s.shard, s.stage, s.reason] for s in self.shard_errors[:SHARD_ERRORS_KEPT]],
+            "texts_truncated": self.texts_truncated,
         }
 
     def load_state_dict(self, state: dict[str, Any]) -> None:
         """Continue the counts of `state_dict()`; the in-memory skip list starts empty."""
         self.read, self.emitted = int(state["read"]), int(state["emitted"])
+        self.images_emitted = int(state.get("images_emitted", self.emitted))  # older states: one image a sample
         self.repeated, self.skipped_count = int(state["repeated"]), int(state["skipped"])
         self.skipped = []
         self.skip_counts = {str(k): int(v) for k, v in state["skip_reasons"].items()}
         self.skip_examples = {str(k): [str(e) for e in v] for k, v in state["skip_examples"].items()}
         self.shards_planned, self.shards_read = int(state["shards_planned"]), int(state["shards_read"])
         self.shards_failed = int(state["shards_failed"])
+        self.texts_truncated = int(state.get("texts_truncated", 0))  # absent in states saved before texts
         self.shard_errors = [Skip(str(url), "", str(stage), str(reason)) for url, stage, reason in state["shard_errors"]]
 
     @classmethod
@@ -147,12 +155,14 @@ class Ledger:
         for led in ledgers:
             out.read += led.read
             out.emitted += led.emitted
+            out.images_emitted += led.images_emitted
             out.repeated += led.repeated
             out.skipped_count += led.skipped_count
             out.skipped.extend(led.skipped)
             out.shards_planned += led.shards_planned
             out.shards_read += led.shards_read
             out.shards_failed += led.shards_failed
+            out.texts_truncated += led.texts_truncated
             out.shard_errors.extend(led.shard_errors)
             for key, n in led.skip_counts.items():
                 full = key not in out.skip_counts and len(out.skip_counts) >= MAX_REASONS

@@ -15,12 +15,14 @@ from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
 from .errors import PatchloomError
-from .image.chain import SampleError, SkipRatioError, image_to_patches, process_record
+from .image.chain import SampleError, SkipRatioError, image_to_patches, process_sample
 from .image.patches import PatchSet
 from .ledger import EmptyEpochError, Ledger, Skip, check_not_empty, check_skip_guard
 from .packing.batch import PackedBatch
 from .packing.packer import Packer
+from .packing.text import TextEncoder, add_text_tokens
 from .read import (
+    Fields,
     Record,
     ReaderCursor,
     ShuffleBuffer,
@@ -134,6 +136,10 @@ class Pipeline:
     with each PatchSet the per-sample chain makes (before packing). `max_records` stops the reader
     after that many records (a preview; what was read is still processed, packed and counted); pass
     the same value when resuming such a run.
+
+    `text_encoder` (`fn(str) -> list[int]`, any tokenizer; code, never named in a recipe) gives every
+    batch `text_tokens` [B, S, text.max_tokens] and `text_lengths` [B, S] from its `texts`, encoded
+    here (in the DataLoader worker); texts cut to text.max_tokens count in `ledger.texts_truncated`.
     """
 
     def __init__(
@@ -151,19 +157,24 @@ class Pipeline:
         on_record: Callable[[Record], None] | None = None,
         on_sample: Callable[[PatchSet], None] | None = None,
         max_records: int | None = None,
+        text_encoder: TextEncoder | None = None,
     ) -> None:
         if not isinstance(recipe, Recipe):
             raise TypeError(f"Pipeline needs a Recipe (got {type(recipe).__name__}); use Recipe.from_file(path)")
         self.recipe = recipe
         self._fingerprint = recipe.fingerprint()
         src = recipe.source
-        self.shards = expand_shards(shards if shards is not None else src.shards, allow_shell=allow_shell)
+        self.shards = expand_shards(shards if shards is not None else src.shards, allow_shell=allow_shell,
+                                    image_keys=src.image_keys)
+        # What Parquet files and image folders are read for (tar shards give every member anyway).
+        self._fields = Fields(tuple(src.image_keys), src.label_key, src.text_key)
         self.allow_shell = allow_shell
         self.rank, self.world_size = rank, world_size
         self.worker, self.num_workers = worker, num_workers
         self.epoch = epoch
         self.guard = guard
         self.on_record, self.on_sample, self.max_records = on_record, on_sample, max_records
+        self.text_encoder = text_encoder
         self.ledger = Ledger()
         self._identities: list[dict[str, Any]] | None = None
         self._batches = 0
@@ -252,11 +263,13 @@ class Pipeline:
         tasks = reader_tasks(
             self.shards, seed=r.seed, epoch=self.epoch, rank=self.rank, world_size=self.world_size,
             worker=self.worker, num_workers=self.num_workers, shuffle_shards=r.source.shuffle_shards,
+            fields=self._fields,
         )
         self._cursor = ReaderCursor(
             tasks, allow_shell=self.allow_shell,
             on_shard_error=self._shard_error if r.source.on_error == "skip" else None,
             cycle=r.epoch.equalize, limit=self._record_limit(), max_sample_bytes=r.source.max_sample_bytes,
+            fields=self._fields,
         )
         self._shuffle = self._new_shuffle()
         self._packer = self._new_packer()
@@ -272,10 +285,11 @@ class Pipeline:
         r, epoch = self.recipe, self.epoch
 
         def fetch(refs: Sequence[tuple[str, int]]) -> list[Record]:
-            return fetch_records(refs, allow_shell=self.allow_shell, max_sample_bytes=r.source.max_sample_bytes)
+            return fetch_records(refs, allow_shell=self.allow_shell, max_sample_bytes=r.source.max_sample_bytes,
+                                 fields=self._fields)
 
-        def materialise(refs: Sequence[tuple[str, int]]) -> list[PatchSet]:
-            return [process_record(rec, r, epoch) for rec in fetch(refs)]
+        def materialise(refs: Sequence[tuple[str, int]]) -> list[list[PatchSet]]:
+            return [process_sample(rec, r, epoch) for rec in fetch(refs)]
 
         assert self._cursor is not None and self._shuffle is not None and self._packer is not None
         try:
@@ -305,24 +319,28 @@ class Pipeline:
                                       if cursor.pass_ == 0 else len(cursor.tasks))
 
     def samples(self) -> Iterator[PatchSet]:
-        """The PatchSets of this reader's epoch, before packing (bad samples skipped or raised)."""
+        """The PatchSets of this reader's epoch, before packing (bad samples skipped or raised); a
+        multi-image sample gives its images one after the other."""
         self._setup()
-        yield from self._sample_stream()
+        for images in self._sample_stream():
+            yield from images
 
-    def _sample_stream(self) -> Iterator[PatchSet]:
+    def _sample_stream(self) -> Iterator[list[PatchSet]]:
+        """Each sample's PatchSets (one per image, in member order), as the packer takes them."""
         r = self.recipe
         assert self._shuffle is not None
         for rec in self._shuffle(self._records()):
             try:
-                ps = process_record(rec, r, self.epoch)
+                images = process_sample(rec, r, self.epoch)
             except SampleError as err:
                 if r.source.on_error == "raise":
                     raise
                 self._skip(Skip(err.shard, err.key, err.stage, _without_skip_advice(err.cause)))
                 continue
             if self.on_sample is not None:
-                self.on_sample(ps)
-            yield ps
+                for ps in images:
+                    self.on_sample(ps)
+            yield images
         self._end_of_epoch()
 
     def _skip(self, entry: Skip) -> None:
@@ -347,19 +365,25 @@ class Pipeline:
         target = self.batch_target
         if target is not None and self._batches >= target:
             return
-        for ps in self._sample_stream():
-            for batch in packer.push(ps):
-                self.ledger.emitted += batch.num_images
-                self._batches += 1
+        for images in self._sample_stream():
+            for batch in packer.push(images):
+                self._emit(batch)
                 yield batch
                 if target is not None and self._batches >= target:
                     return
         for batch in packer.flush():
-            self.ledger.emitted += batch.num_images
-            self._batches += 1
+            self._emit(batch)
             yield batch
             if target is not None and self._batches >= target:
                 return
+
+    def _emit(self, batch: PackedBatch) -> None:
+        """Count a batch about to be yielded, and add its text tokens when there is an encoder."""
+        if self.text_encoder is not None:
+            self.ledger.texts_truncated += add_text_tokens(batch, self.text_encoder, self.recipe.text.max_tokens)
+        self.ledger.emitted += batch.num_samples
+        self.ledger.images_emitted += batch.num_images
+        self._batches += 1
 
     def state_dict(self, *, with_shards: bool = True) -> dict[str, Any]:
         """Small JSON-able position, valid between batches: {"version", "fingerprint", "epoch", the

@@ -61,7 +61,9 @@ def format_table(stats: RunStats, ledger: dict, *, title: str = "patchloom run")
     opened = ledger.get("shards_read")
     rows = [
         ("images read", f"{ledger['read']}"),
-        ("images emitted", f"{ledger['emitted']}"),
+        ("images emitted", f"{ledger['emitted']}" + (  # multi-image samples: read/emitted/skipped count samples
+            f" samples, {ledger['images_emitted']} images"
+            if ledger.get("images_emitted", ledger["emitted"]) != ledger["emitted"] else "")),
         ("images skipped", f"{ledger['skipped']}"),
         *([("images in buffer", f"{ledger['in_buffer']} (read, not yet packed: the run stopped early)")]
           if ledger.get("in_buffer") else []),

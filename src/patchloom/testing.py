@@ -29,6 +29,12 @@ def batches_equal(a: PackedBatch, b: PackedBatch) -> str | None:
     """None if two batches are identical byte for byte, else the name of the first field that differs."""
     if a.keys != b.keys:
         return "keys"
+    if a.texts != b.texts:
+        return "texts"
+    for name in ("text_tokens", "text_lengths"):
+        x, y = getattr(a, name), getattr(b, name)
+        if (x is None) != (y is None) or (x is not None and (x.shape != y.shape or x.tobytes() != y.tobytes())):
+            return name
     for name, x in a.to_arrays().items():
         y = b.to_arrays().get(name)
         if y is None or x.dtype != y.dtype or x.shape != y.shape or x.tobytes() != y.tobytes():
@@ -40,7 +46,7 @@ def batches_equal(a: PackedBatch, b: PackedBatch) -> str | None:
 
 #: The ledger counts a resumed run must end with exactly as the uninterrupted run did.
 LEDGER_COUNTS = ("read", "emitted", "skipped", "in_buffer", "repeated", "skip_reasons", "shards_read",
-                 "shards_failed")
+                 "shards_failed", "texts_truncated")
 
 
 def check_ledger_balance(pipe: Pipeline, where: str) -> None:
@@ -59,12 +65,21 @@ def ledger_counts(pipe: Pipeline) -> dict:
     return {k: d[k] for k in LEDGER_COUNTS}
 
 
+def check_same_counts(got: dict, want: dict, where: str) -> None:
+    """Assert two ledger_counts() are equal, naming the first count that differs."""
+    if got != want:
+        diff = next(k for k in LEDGER_COUNTS if got[k] != want[k])
+        raise AssertionError(f"{where}: the ledger has {diff}={got[diff]!r}, the full run had {want[diff]!r}")
+
+
 def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> ResumeReport:
     """Run a pipeline through, then restore from its state at every `every`-th batch (from 0 to the
     end, inclusive) in a fresh pipeline and require the rest to match byte for byte.
 
     The ledger must balance (`read == emitted + skipped + in_buffer`) after every batch of every
-    run, and each resumed run must end with the uninterrupted run's ledger counts. The state goes
+    run, and after each batch a resumed run's ledger counts must equal the uninterrupted run's after
+    the same batch (so a resume that loses or double-counts reads, skips or emitted samples is
+    caught where it happens), and at the end too. The state goes
     through JSON on the way, as it would in a checkpoint. Raises AssertionError naming the position,
     batch and field (or ledger count) of the first difference.
     """
@@ -72,6 +87,7 @@ def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> Re
         raise ValueError("every must be >= 1")
     pipe = make_pipeline()
     full: list[PackedBatch] = []
+    counts_after: list[dict] = []  # the full run's ledger counts after each batch
     states: dict[int, str] = {}
     report = ResumeReport(batches=0)
     t0 = time.perf_counter()
@@ -79,6 +95,7 @@ def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> Re
     for batch in pipe:
         full.append(batch)
         check_ledger_balance(pipe, f"full run, batch {len(full) - 1}")
+        counts_after.append(ledger_counts(pipe))
         if len(full) % every == 0:
             t = time.perf_counter()
             states[len(full)] = json.dumps(pipe.state_dict())
@@ -99,9 +116,14 @@ def check_resume(make_pipeline: Callable[[], Pipeline], *, every: int = 1) -> Re
         if first is not None:
             rest.append(first)
             check_ledger_balance(resumed, f"resumed at batch {pos}, batch {pos}")
+            if pos < len(counts_after):
+                check_same_counts(ledger_counts(resumed), counts_after[pos], f"resumed at batch {pos}, batch {pos}")
             for batch in it:
                 rest.append(batch)
-                check_ledger_balance(resumed, f"resumed at batch {pos}, batch {pos + len(rest) - 1}")
+                at = pos + len(rest) - 1
+                check_ledger_balance(resumed, f"resumed at batch {pos}, batch {at}")
+                if at < len(counts_after):
+                    check_same_counts(ledger_counts(resumed), counts_after[at], f"resumed at batch {pos}, batch {at}")
         check_ledger_balance(resumed, f"resumed at batch {pos}, end")
         if len(rest) != len(full) - pos:
             raise AssertionError(

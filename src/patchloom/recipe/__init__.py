@@ -20,6 +20,7 @@ from .schema import (
     SampledTokens,
     SizingConfig,
     SourceConfig,
+    TextConfig,
     batch_bytes,
     current_names,
     fingerprint_form,
@@ -28,6 +29,6 @@ from .schema import (
 __all__ = [
     "MAX_BATCH_BYTES", "MAX_RECIPE_BYTES", "MAX_SEED", "RECIPE_VERSION", "RENAMES", "BlockDrop", "ContentDrop",
     "CropConfig", "DecodeConfig", "DropConfig", "EpochConfig", "GridDrop", "OutputConfig", "PackingConfig",
-    "PatchOp", "Recipe", "RecipeError", "SampledTokens", "SizingConfig", "SourceConfig", "batch_bytes",
+    "PatchOp", "Recipe", "RecipeError", "SampledTokens", "SizingConfig", "SourceConfig", "TextConfig", "batch_bytes",
     "current_names", "fingerprint_form",
 ]

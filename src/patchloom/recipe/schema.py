@@ -32,10 +32,11 @@ from pydantic import (
 
 from ..image.dropping import DROP_MODES
 from ..image.patchops import PATCH_OPS
-from ..image.sizing import RESAMPLE_FILTERS, SIZING_MODES
+from ..image.sizing import RESAMPLE_FILTERS, SIZING_MODES, usable_tokens
 from ..packing.assign import ALGORITHMS
 from .loader import MAX_SEED, Provenance, resolve_file, unusable_value
 from .messages import RENAMES, ProblemAt, RecipeError, explain, kind, path_text, show, where
+from .video import VideoConfig, check_video
 
 RECIPE_VERSION = 1
 DEFAULT_IMAGE_KEYS = ["jpg", "jpeg", "png", "webp", "gif", "bmp", "tif", "tiff"]
@@ -77,12 +78,49 @@ class SourceConfig(_Section):
 
     shards: str | list[str] | None = None
     label_key: str | None = "cls"
+    # The member holding the sample's text (caption): `txt`, or `json:field` for a string field of
+    # a JSON member, read as UTF-8 like label_key; null: no text. A sample without it gets "".
+    text_key: str | None = None
     image_keys: list[str] = Field(default_factory=lambda: list(DEFAULT_IMAGE_KEYS))
+    # one: the first member whose extension is in image_keys. all: every member whose extension ends
+    # in one of them (`key.0.jpg`, `key.1.png`, ...), in the numeric order of the part before the
+    # final extension (no number first); they go into one row, adjacent (PackedBatch.groups).
+    images_per_sample: Literal["one", "all"] = "one"
+    # Members holding a video file (`mp4`, `webm`, `mkv`, ...; needs the video extra): a sample with
+    # one of them is a clip (its first match in this order; image members beside it are ignored),
+    # cut into frames and tubelets under the `video` section. Empty: every sample is an image sample.
+    video_keys: list[str] = Field(default_factory=list)
     shuffle_shards: StrictBool = True
     shuffle_buffer: StrictInt = Field(default=0, ge=0)
     on_error: Literal["skip", "raise"] = "skip"
     max_skip_ratio: StrictFloat | None = Field(default=0.05, ge=0.0, le=1.0)
     max_sample_bytes: StrictInt = Field(default=100_000_000, ge=1)
+
+    @field_validator("video_keys")
+    @classmethod
+    def _video_keys(cls, v: list[str]) -> list[str]:
+        bad = [k for k in v if not k or k != k.strip() or "/" in k]
+        if bad or len(set(v)) != len(v):
+            raise ValueError(f"must be distinct member extensions like `mp4` or `webm` (got {v!r})")
+        return v
+
+    @field_validator("text_key")
+    @classmethod
+    def _member_key(cls, v: str | None) -> str | None:
+        if v is None:
+            return v
+        ext, colon, json_field = v.partition(":")
+        if not ext or ext != ext.strip() or (colon and not json_field.strip()):
+            raise ValueError(f"must be a member extension like `txt`, or `json:field` (got {v!r})")
+        return v
+
+
+class TextConfig(_Section):
+    """The text arrays a batch gets when the caller passes a `text_encoder` (code, never named here):
+    `text_tokens` [B, S, max_tokens], padded with 0; a longer text keeps its first max_tokens tokens
+    and is counted in the ledger (texts_truncated)."""
+
+    max_tokens: StrictInt = Field(default=64, ge=1, le=65_536)
 
 
 class DecodeConfig(_Section):
@@ -142,13 +180,20 @@ class SizingConfig(_Section):
     mode: SizingModeName = "budget"
     max_aspect: StrictFloat | None = Field(default=None, ge=1.0)
     aspect_rule: Literal["crop", "pad"] = "crop"
-    resample: ResampleName = "bicubic"
+    resample: ResampleName = "area"  # image.sizing.DEFAULT_RESAMPLE: fastest filter keeping >= 40 dB PSNR
     sampled: SampledTokens | None = None
+    # Both grid sides are multiples of this (for encoders that merge each m x m block of tokens);
+    # budgets then count whole m x m windows (see patchloom.image.sizing.plan_grid).
+    grid_multiple: StrictInt = Field(default=1, ge=1, le=64)
+    # Frames per token (tubelets): a token covers this many consecutive frames of one p x p patch, so
+    # D = temporal_patch * patch_size^2 * 3 for every token; a still image repeats its frame.
+    temporal_patch: StrictInt = Field(default=1, ge=1, le=64)
 
     @model_validator(mode="after")
     def _consistent(self) -> SizingConfig:
         if self.min_tokens > self.max_tokens:
             raise ValueError(f"min_tokens must be <= max_tokens (got {self.min_tokens} > {self.max_tokens})")
+        _check_grid_multiple(self)
         if self.mode == "fixed" and math.isqrt(self.max_tokens) ** 2 < self.min_tokens:
             raise ValueError(
                 f"mode 'fixed' uses a square grid of isqrt(max_tokens)^2 = {math.isqrt(self.max_tokens) ** 2} "
@@ -161,6 +206,25 @@ class SizingConfig(_Section):
                 f"sampled budgets must be <= max_tokens (got {self.sampled.largest} > {self.max_tokens})"
             )
         return self
+
+
+def _check_grid_multiple(cfg: SizingConfig) -> None:
+    """With grid_multiple m > 1, every budget must hold one m x m window and the largest grid of whole
+    windows must still reach min_tokens."""
+    m = cfg.grid_multiple
+    if m == 1:
+        return
+    if cfg.max_tokens < m * m:
+        raise ValueError(f"grid_multiple {m} needs max_tokens >= {m * m} (one {m}x{m} window; got {cfg.max_tokens})")
+    largest = usable_tokens(cfg, cfg.max_tokens)
+    if largest < cfg.min_tokens:
+        raise ValueError(f"with grid_multiple {m} the largest grid has {largest} tokens (whole {m}x{m} windows), "
+                         f"below min_tokens={cfg.min_tokens}; lower min_tokens or raise max_tokens")
+    s = cfg.sampled
+    smallest = None if s is None else (s.range[0] if s.range is not None else min(s.choices or [m * m]))
+    if cfg.mode == "sampled" and smallest is not None and smallest < m * m:
+        raise ValueError(f"with grid_multiple {m} every sampled budget must hold one {m}x{m} window: raise the "
+                         f"smallest sampled budget to at least {m * m} (got {smallest})")
 
 
 class CropConfig(_Section):
@@ -299,6 +363,9 @@ class OutputConfig(_Section):
     dtype: Literal["uint8", "float32", "float16"] = "uint8"
     mean: tuple[StrictFloat, StrictFloat, StrictFloat] = (0.5, 0.5, 0.5)
     std: tuple[StrictFloat, StrictFloat, StrictFloat] = (0.5, 0.5, 0.5)
+    # raster: tokens row by row. windows: the tokens of each sizing.grid_multiple x grid_multiple
+    # window contiguous (windows in raster order, raster inside each); coords still name each token.
+    token_order: Literal["raster", "windows"] = "raster"
 
     @field_validator("std")
     @classmethod
@@ -343,6 +410,8 @@ class Recipe(_Section):
     patch_ops: list[PatchOp] = Field(default_factory=list)
     drop: DropConfig = Field(default_factory=DropConfig)
     packing: PackingConfig = Field(default_factory=PackingConfig)
+    text: TextConfig = Field(default_factory=TextConfig)
+    video: VideoConfig = Field(default_factory=VideoConfig)
     epoch: EpochConfig = Field(default_factory=EpochConfig)
     output: OutputConfig = Field(default_factory=OutputConfig)
 
@@ -374,7 +443,7 @@ class Recipe(_Section):
             p = self.packing
             rows = show(p.rows)
             if slots > tokens:
-                key, what = "max_images_per_row", f"{rows} rows x {show(p.max_images_per_row)} images x 16 bytes"
+                key, what = "max_images_per_row", f"{rows} rows x {show(p.max_images_per_row)} images x 20 bytes"
             else:
                 key = "seq_len"
                 what = f"{rows} rows x {show(p.seq_len)} tokens x {per_token}, plus grids and labels"
@@ -394,7 +463,15 @@ class Recipe(_Section):
                 raise ValueError("patch_ops standardize must have p: 1 (every image on the same scale)")
             if any(n in ("jitter", "noise", "standardize") for n in names[i + 1 :]):
                 raise ValueError("patch_ops standardize must come after jitter and noise (only shuffle may follow)")
+        _check_token_order(self, names)
+        check_video(self)
         return self
+
+    @property
+    def temporal(self) -> bool:
+        """True when tokens carry a time (clips can come, or tubelets span frames): every PatchSet then
+        has `times`, every batch `times` and `frames`."""
+        return bool(self.source.video_keys) or self.sizing.temporal_patch > 1
 
     @classmethod
     def from_dict(cls, data: dict[str, Any] | None, *, origin: str = "<dict>") -> Recipe:
@@ -471,26 +548,66 @@ class Recipe(_Section):
         return Recipe.from_dict(data)
 
 
+def _check_token_order(recipe: Recipe, op_names: list[str]) -> None:
+    """Window order needs windows (grid_multiple > 1) and no patch op that reorders tokens."""
+    if recipe.output.token_order != "windows":
+        return
+    if recipe.sizing.grid_multiple == 1:
+        raise ProblemAt(("output", "token_order"), "token_order windows keeps each sizing.grid_multiple x "
+                        "grid_multiple window together: set sizing.grid_multiple to 2 or more (got 1)")
+    if "shuffle" in op_names:
+        raise ProblemAt(("output", "token_order"), "token_order windows keeps each window's tokens together, "
+                        "but patch op shuffle reorders them: remove the shuffle op or use token_order raster")
+    per = recipe.sizing.grid_multiple ** 2
+    if recipe.packing.seq_len % per:
+        raise ProblemAt(("packing", "seq_len"), f"with output.token_order windows a row must split into whole "
+                        f"{recipe.sizing.grid_multiple}x{recipe.sizing.grid_multiple} windows: make seq_len a "
+                        f"multiple of {per} (got {recipe.packing.seq_len})")
+
+
 def batch_bytes(recipe: Recipe) -> tuple[int, int, str]:
     """Bytes of one packed batch's arrays under `recipe` (what packing.build_batch allocates): the
     per-token arrays, the per-image-slot arrays, and the bytes a token in words. Per token: patches
     [B, L, D] in output.dtype, segment ids [B, L] int32, coords [B, L, 2] int32, and the mask
-    [B, L] bool under drop output: mask; per slot: grids [B, S, 2] int32 and labels [B, S] int64."""
-    values = recipe.sizing.patch_size**2 * 3
+    [B, L] bool under drop output: mask; per slot: grids [B, S, 2] int32, labels [B, S] int64 and
+    groups [B, S] int32; with clips (Recipe.temporal) D = temporal_patch * p^2 * 3, times [B, L] and
+    frames [B, S] int32."""
+    values = recipe.sizing.temporal_patch * recipe.sizing.patch_size**2 * 3
     itemsize = DTYPE_BYTES[recipe.output.dtype]
     masked = recipe.drop.mode != "none" and recipe.drop.output == "mask"
-    token = values * itemsize + 4 + 8 + (1 if masked else 0)
-    slot = 8 + 8
+    timed = 4 if recipe.temporal else 0  # times [B, L] and frames [B, S], int32
+    token = values * itemsize + 4 + 8 + (1 if masked else 0) + timed
+    slot = 8 + 8 + 4 + timed
     p = recipe.packing
     words = (f"({values} patch values x {itemsize} byte{'s' if itemsize > 1 else ''} of {recipe.output.dtype} "
              f"+ 12 bytes of segment id and coords{' + 1 of mask' if masked else ''})")
     return p.rows * p.seq_len * token, p.rows * p.max_images_per_row * slot, words
 
 
+#: Keys added after fingerprints were first recorded (dotted path -> default). fingerprint_form leaves
+#: such a key out while it has its default, so a recipe that does not use it keeps its fingerprint
+#: (resume states and packed folders made before the key existed still match). Add new keys here.
+ADDED_KEYS: dict[str, Any] = {
+    "source.images_per_sample": "one",
+    "sizing.grid_multiple": 1,
+    "output.token_order": "raster",
+    "source.text_key": None,
+    "text.max_tokens": 64,
+    "source.video_keys": [],
+    "sizing.temporal_patch": 1,
+    "video.frames": None,
+    "video.fps": None,
+    "video.max_frames": 16,
+    "video.sampling": "random",
+    "video.max_tokens": None,
+}
+
+
 def fingerprint_form(settings: dict[str, Any]) -> dict[str, Any]:
     """`settings` (Recipe.to_dict()) with every renamed key (messages.RENAMES) moved back to its
-    first name and value, and the sub-sections the renames emptied removed: the form fingerprints
-    are taken of, so that renaming a key does not change any recipe's fingerprint."""
+    first name and value, the sub-sections the renames emptied removed, and keys added later
+    (ADDED_KEYS) left out while at their defaults: the form fingerprints are taken of, so that
+    renaming or adding a key does not change any recipe's fingerprint."""
     out = copy.deepcopy(settings)
     emptied: set[tuple[str, ...]] = set()
     for r in RENAMES.values():
@@ -506,6 +623,13 @@ def fingerprint_form(settings: dict[str, Any]) -> dict[str, Any]:
     for *parents, name in emptied:
         if _section_at(out, parents)[name] == {}:
             del _section_at(out, parents)[name]
+    for path, default in ADDED_KEYS.items():
+        *parents, key = path.split(".")
+        section = _section_at(out, parents)
+        if key in section and section[key] == default:
+            del section[key]
+            if parents and not section:  # a section added later, all at its defaults
+                del _section_at(out, parents[:-1])[parents[-1]]
     return out
 
 

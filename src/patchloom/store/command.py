@@ -33,7 +33,7 @@ def cmd_pack(args: argparse.Namespace) -> int:
         man = pack_to_dir(recipe, args.out, shards=shards, workers=args.workers, epoch=args.epoch,
                           progress=not args.no_progress, allow_shell=args.allow_shell,
                           max_batches_per_shard=args.max_batches_per_shard, overwrite=args.overwrite,
-                          engine=args.engine, address=args.address, resume=args.resume)
+                          engine=args.engine, address=args.address, resume=args.resume, compress=args.compress)
     except PatchloomError as err:
         print(f"patchloom: error: {err}", file=sys.stderr)
         return 2
@@ -106,6 +106,9 @@ def add_store_commands(subparsers) -> None:
     pack.add_argument("--address", default=None,
                       help="with --engine ray: the Ray cluster to use (`auto`, or HOST:PORT of the head node); "
                            "default: $RAY_ADDRESS if set, else start Ray on this machine with all its CPUs")
+    pack.add_argument("--compress", choices=["zstd"], default=None,
+                      help="store the arrays zstd-compressed (about 1.7x smaller for uint8 photos, slower to read; "
+                           "needs pip install 'patchloom[compress]'; manifest version 2)")
     pack.add_argument("--overwrite", action="store_true",
                       help="replace a previous pack in --out (removes only pack's own files; refuses a folder "
                            "that holds others)")

@@ -41,8 +41,8 @@ class _HashingFile:
 class ShardWriter:
     """One worker's output: rolls shards every `per_shard` batches, each written as .tmp then renamed."""
 
-    def __init__(self, out: Path, worker: int, per_shard: int) -> None:
-        self.out, self.worker, self.per_shard = out, worker, per_shard
+    def __init__(self, out: Path, worker: int, per_shard: int, compress: str | None = None) -> None:
+        self.out, self.worker, self.per_shard, self.compress = out, worker, per_shard, compress
         self.entries: list[dict[str, Any]] = []
         self._tar = self._file = self._hashing = None
         self._tmp: Path | None = None
@@ -59,7 +59,7 @@ class ShardWriter:
             self._tar = TarWriter(self._hashing, user="", group="", mode=0o444, encoder=False, mtime=MTIME)
             self._cur = {"name": name, "worker": self.worker, "first_batch": n, "batches": 0, "images": 0,
                          "tokens": 0, "batch_sha256": []}
-        self._tar.write(encode_batch(batch_key(self.worker, n), batch))
+        self._tar.write(encode_batch(batch_key(self.worker, n), batch, self.compress))
         cur = self._cur
         cur["batches"] += 1
         cur["images"] += batch.num_images
@@ -98,7 +98,7 @@ def batch_shape(batch: PackedBatch) -> dict[str, Any]:
     """The manifest's `batch_shape` of a batch: every batch of a pack has the same."""
     return {"rows": batch.rows, "seq_len": batch.seq_len, "max_images": batch.max_images,
             "patch_dim": int(batch.patches.shape[-1]), "dtype": str(batch.patches.dtype),
-            "masked": batch.masked is not None}
+            "masked": batch.masked is not None, **({"clips": True} if batch.times is not None else {})}
 
 
 def _run_pipeline(job: dict[str, Any], report: Callable[[tuple], None],
@@ -131,10 +131,12 @@ def _run_pipeline(job: dict[str, Any], report: Callable[[tuple], None],
 
 def job_pack(job: dict[str, Any], report: Callable[[tuple], None]) -> dict[str, Any]:
     """Pack one group into its shards; its result (counts, ledger, shard entries) for the manifest."""
-    writer = ShardWriter(Path(job["out"]), job["worker"], job["per_shard"])
+    writer = ShardWriter(Path(job["out"]), job["worker"], job["per_shard"], job.get("compress"))
     try:
         result = _run_pipeline(job, report, writer.write)
         writer.finish()
+        if job.get("compress") and result["shape"] is not None:
+            result["shape"]["compress"] = job["compress"]  # how the batches are stored, for readers
     except BaseException:
         writer.abort()
         raise

@@ -19,8 +19,11 @@ from typing import Any
 
 from ..recipe import MAX_SEED, current_names
 from .format import (
+    COMPRESSED_VERSION,
+    COMPRESSIONS,
     FORMAT,
     FORMAT_VERSION,
+    READ_VERSIONS,
     HASH_RULE,
     MANIFEST,
     PATCH_DTYPES,
@@ -101,10 +104,11 @@ def load_manifest(out_dir: str | Path) -> dict[str, Any]:
         raise StoreError(f"{path}: not a patchloom packed-shard manifest (format {man.get('format')!r})"
                          if isinstance(man, dict) else f"{path}: not a manifest object")
     version = man.get("version")
-    if version != FORMAT_VERSION:
-        newer = isinstance(version, int) and version > FORMAT_VERSION
-        raise StoreError(f"{path}: manifest format version {version!r}; this patchloom reads version "
-                         f"{FORMAT_VERSION}" + (" (written by a newer patchloom: upgrade)" if newer else ""))
+    if version not in READ_VERSIONS or isinstance(version, bool):
+        newer = isinstance(version, int) and version > max(READ_VERSIONS)
+        raise StoreError(f"{path}: manifest format version {version!r}; this patchloom reads versions "
+                         f"{', '.join(map(str, READ_VERSIONS))}" + (" (written by a newer patchloom: upgrade)"
+                                                                   if newer else ""))
     for name in ("recipe", "fingerprint", "epoch", "workers", "inputs", "shards"):
         if name not in man:
             raise StoreError(f"{path}: manifest lacks {name!r}")
@@ -202,6 +206,10 @@ def check_manifest(man: dict[str, Any], path: Path | str) -> None:
         spec = f.seq(man["input_spec"], "input_spec")
         f.need(all(isinstance(s, str) and s.strip() and "\0" not in s for s in spec), "input_spec",
                "a list of shard specs", spec)
+    if "classes" in man:  # image folder -> class names in index order (label_key: folder)
+        for folder, names in f.obj(man["classes"], "classes").items():
+            f.need(isinstance(names, list) and all(isinstance(n, str) and "\0" not in n for n in names),
+                   f"classes[{shorten(repr(folder), 60)}]", "a list of class names", names)
     per_worker = check_shard_entries(f, man["shards"], workers=workers, per_shard=per_shard)
     f.need(man.get("worker_batches") == per_worker, "worker_batches",
            f"the batches of each of the {workers} workers ({shorten(repr(per_worker))})", man.get("worker_batches"))
@@ -219,6 +227,11 @@ def check_manifest(man: dict[str, Any], path: Path | str) -> None:
     f.need(shape.get("dtype") in PATCH_DTYPES, "batch_shape.dtype", f"one of {', '.join(PATCH_DTYPES)}",
            shape.get("dtype"))
     f.need(isinstance(shape.get("masked"), bool), "batch_shape.masked", "true or false", shape.get("masked"))
+    f.need(shape.get("clips", True) is True, "batch_shape.clips", "true, or absent", shape.get("clips"))
+    compressed = man.get("version") == COMPRESSED_VERSION
+    f.need(shape.get("compress") in (COMPRESSIONS if compressed else (None,)), "batch_shape.compress",
+           f"one of {', '.join(COMPRESSIONS)} in a version {COMPRESSED_VERSION} manifest, absent otherwise",
+           shape.get("compress"))
 
 
 def manifest_bytes(man: dict[str, Any]) -> bytes:
@@ -252,16 +265,17 @@ def merge_ledgers(ledgers: list[dict[str, Any]]) -> dict[str, Any]:
 
 def build_manifest(recipe_dict: dict[str, Any], fingerprint: str, *, epoch: int, workers: int, per_shard: int,
                    inputs: list[dict[str, Any]], results: list[dict[str, Any]],
-                   input_spec: list[str]) -> dict[str, Any]:
-    """The manifest of a finished pack from the per-worker job results (in worker order), whichever engine ran them."""
+                   input_spec: list[str], classes: dict[str, list[str]] | None = None) -> dict[str, Any]:
+    """The manifest of a finished pack from the per-worker job results (in worker order), whichever engine ran them.
+    `classes`: each image folder's class names in index order (with `label_key: folder`)."""
     shapes = {json.dumps(r["shape"], sort_keys=True) for r in results if r["shape"] is not None}
     if len(shapes) > 1:
         raise StoreError(f"workers produced different batch shapes: {sorted(shapes)}")
     batches = sum(r["batches"] for r in results)
     tokens, slots = sum(r["tokens"] for r in results), sum(r["slots"] for r in results)
-    return {
+    man = {
         "format": FORMAT,
-        "version": FORMAT_VERSION,
+        "version": COMPRESSED_VERSION if any((r["shape"] or {}).get("compress") for r in results) else FORMAT_VERSION,
         "recipe": recipe_dict,
         "fingerprint": fingerprint,
         "libraries": library_versions(),
@@ -278,3 +292,6 @@ def build_manifest(recipe_dict: dict[str, Any], fingerprint: str, *, epoch: int,
         "totals": {"batches": batches, "images": sum(r["images"] for r in results), "tokens": tokens,
                    "slots": slots, "padding_fraction": round(1 - tokens / slots, 6) if slots else 0.0},
     }
+    if classes:
+        man["classes"] = classes
+    return man

@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 
 from ..packing.batch import PackedBatch
+from ..packing.text import TextEncoder, add_text_tokens
 from ..recipe import MAX_SEED, Recipe
 from ..seeding import stream_rng
 from .format import (
@@ -86,7 +87,8 @@ def index_shard(f, entry: dict[str, Any], shape: dict[str, Any] | None) -> Shard
                 limit = member_limit(member, expected)
                 if limit is None:
                     raise StoreError(f"{name}: unexpected tar entry {shorten(repr(info.name))} (a batch of this folder "
-                                     f"holds {', '.join(sorted(f'{n}.npy' for n in expected))} and keys.json)")
+                                     f"holds {', '.join(sorted(f'{n}.npy' for n in expected))}, keys.json "
+                                     "and maybe texts.json)")
                 if member in members:
                     raise StoreError(f"{name}: {info.name!r} appears twice")
                 if info.size > limit:
@@ -165,13 +167,22 @@ class PackedReader:
     counts the repeats this reader yields (also in `stats`). Without it every batch is read exactly
     once across all slots. With `check_hashes` each batch is hashed and compared to the manifest.
     `state_dict()` / `load_state_dict()` resume after the last batch yielded, in the same epoch and order.
+
+    Texts: a folder stores each batch's `texts` (never tokens: the encoder is code, not part of the
+    recipe). With `text_encoder` (`fn(str) -> list[int]`) each batch read gets `text_tokens` and
+    `text_lengths` under the recorded recipe's `text.max_tokens`; `texts_truncated` counts the
+    samples whose text this reader cut.
     """
 
     def __init__(self, out_dir: str | Path, *, rank: int = 0, world_size: int = 1, worker: int | None = None,
                  num_workers: int | None = None, check_hashes: bool = True, seed: int | None = None,
-                 epoch: int = 0, shuffle: bool = True, equalize: bool | None = None) -> None:
+                 epoch: int = 0, shuffle: bool = True, equalize: bool | None = None,
+                 text_encoder: TextEncoder | None = None) -> None:
         self.dir = Path(out_dir)
         self.manifest = load_manifest(self.dir)
+        self.text_encoder = text_encoder
+        self.texts_truncated = 0
+        self._text_max = self.recipe.text.max_tokens if text_encoder is not None else 0
         if (worker is None) != (num_workers is None):
             raise ValueError("give worker and num_workers together (or neither, to use torch's worker info)")
         if worker is None or num_workers is None:
@@ -229,7 +240,8 @@ class PackedReader:
     def stats(self) -> dict[str, int]:
         """This reader's epoch: batches it yields (repeats included), repeats, and batches yielded so far."""
         plan, repeats = self._plan()
-        return {"epoch": self.epoch, "batches": len(plan), "repeats": repeats, "yielded": self._yielded}
+        return {"epoch": self.epoch, "batches": len(plan), "repeats": repeats, "yielded": self._yielded,
+                "texts_truncated": self.texts_truncated}
 
     @property
     def recipe(self) -> Recipe:
@@ -266,6 +278,8 @@ class PackedReader:
         if self.check_hashes and batch_digests(batch)[1] != entry["batch_sha256"][j]:
             raise StoreError(f"{name} batch {j} ({key}): arrays do not hash to the manifest (corrupted or modified "
                              f"after packing; `patchloom verify {self.dir}` says which)")
+        if self.text_encoder is not None:
+            self.texts_truncated += add_text_tokens(batch, self.text_encoder, self._text_max)
         return batch
 
     def state_dict(self) -> dict[str, Any]:
@@ -294,8 +308,10 @@ class PackedReader:
 
 def read_packed(out_dir: str | Path, *, rank: int = 0, world_size: int = 1, worker: int | None = None,
                 num_workers: int | None = None, check_hashes: bool = True, seed: int | None = None,
-                epoch: int = 0, shuffle: bool = True, equalize: bool | None = None) -> Iterator[PackedBatch]:
+                epoch: int = 0, shuffle: bool = True, equalize: bool | None = None,
+                text_encoder: TextEncoder | None = None) -> Iterator[PackedBatch]:
     """Stream a packed folder's batches for one reader slot: a seeded order per epoch, the same number of
-    batches on every rank when world_size > 1 (see PackedReader)."""
+    batches on every rank when world_size > 1, texts tokenized on read by `text_encoder` (see PackedReader)."""
     return iter(PackedReader(out_dir, rank=rank, world_size=world_size, worker=worker, num_workers=num_workers,
-                             check_hashes=check_hashes, seed=seed, epoch=epoch, shuffle=shuffle, equalize=equalize))
+                             check_hashes=check_hashes, seed=seed, epoch=epoch, shuffle=shuffle, equalize=equalize,
+                             text_encoder=text_encoder))
