@@ -80,13 +80,15 @@ def test_every_sample_has_image_label_and_metadata(demo):
     for key, sample in samples.items():
         assert "." not in key
         ext, data = image_of(sample)
-        assert set(sample) == {ext, "cls", "json"}
+        views = {f"{i}.jpg" for i in range(1, json.loads(sample["json"]).get("views", 1))}  # multi-image samples
+        assert set(sample) == {ext, "cls", "json", "txt"} | views
         label = int(sample["cls"].decode("ascii"))
         assert 0 <= label < len(DEMO_CLASSES)
         meta = json.loads(sample["json"].decode("utf-8"))
         assert meta["key"] == key
         assert meta["category"] == DEMO_CLASSES[label] and meta["label"] == label
         assert isinstance(meta["caption"], str) and meta["caption"] and "\n" not in meta["caption"]
+        assert sample["txt"].decode("utf-8") == meta["caption"]
         assert meta["width"] >= 1 and meta["height"] >= 1
         with Image.open(io.BytesIO(data)) as im:  # header only
             assert (im.format, im.mode) == (meta["format"], meta["mode"]), key

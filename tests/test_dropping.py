@@ -31,7 +31,7 @@ from patchloom.recipe.schema import DropConfig
 
 GRIDS = [(1, 1), (1, 50), (3, 3), (14, 14), (7, 40)]
 RATES = [0.0, 0.3, 0.75, 1.0]
-MODES = ["random", "block", "grid", "stripes", "content"]
+MODES = ["random", "block", "grid", "stripes", "content", "tube"]
 ASPECT = (0.3, 1 / 0.3)
 
 
@@ -385,6 +385,24 @@ def test_decide_drop_content_follows_coords_of_reordered_tokens() -> None:
         decide_drop(cfg, (6, 8), patches[:40], np.random.default_rng(5))
     with pytest.raises(ValueError, match="once"):
         decide_drop(cfg, (6, 8), patches, np.random.default_rng(5), coords=np.zeros((48, 2), dtype=np.int32))
+
+
+def test_content_coords_are_checked_against_each_side_of_the_grid() -> None:
+    """Each coord is a place of the 6 x 8 grid: row < 6 and col < 8 (a row of 6 or 7 fits the columns
+    but not the rows), none negative, and every place named exactly once (twice is already wrong)."""
+    patches, _ = half_flat_image((6, 8), 4, split="left")
+    cfg = DropConfig(mode="content", rate=0.4)
+    good = grid_coords(6, 8)
+    for bad_place in ([6, 0], [0, 8], [-1, 0], [0, -1]):
+        coords = good.copy()
+        coords[5] = bad_place
+        with pytest.raises(ValueError, match="places in the 6x8 grid"):
+            decide_drop(cfg, (6, 8), patches, np.random.default_rng(5), coords=coords)
+    twice = good.copy()
+    twice[1] = twice[0]  # place (0, 0) twice, (0, 1) never
+    with pytest.raises(ValueError, match="every grid place once"):
+        decide_drop(cfg, (6, 8), patches, np.random.default_rng(5), coords=twice)
+    assert decide_drop(cfg, (6, 8), patches, np.random.default_rng(5), coords=good).total == 48
 
 
 # --- apply_drop -----------------------------------------------------------------------------

@@ -1,14 +1,15 @@
 """Mutated JPEG/PNG bytes through `process_record`: a valid PatchSet or a SampleError, nothing else.
 
-Hypothesis flips bits, truncates, splices and inserts bytes into small valid images. Each case must
-finish in under 2 s. `decode.pixel_limit` is kept small so a mutated header that claims a large
-size is refused instead of decoding megapixels of garbage (that path is the pixel_limit test's job).
+Hypothesis flips bits, truncates, splices and inserts bytes into small valid images. The work of
+each case is bounded by counts, not time: at most one decode, of an image whose header is within
+`decode.pixel_limit`. The limit is kept small so a mutated header that claims a large size is
+refused instead of decoding megapixels of garbage (that path is the pixel_limit test's job).
 """
 
 from __future__ import annotations
 
 import io
-import time
+from unittest import mock
 
 import numpy as np
 from hypothesis import HealthCheck, given, settings
@@ -17,14 +18,16 @@ from PIL import Image
 
 from patchloom import PatchSet, Recipe, SampleError
 from patchloom.image.chain import process_record
+from patchloom.image.decode import OpenedImage, decode_path_counts
 from patchloom.read import Record
 
 MAX_TOKENS = 64
 PATCH = 8
+PIXEL_LIMIT = 4_000_000
 RECIPE = Recipe.from_dict({
     "seed": 0,
     "sizing": {"patch_size": PATCH, "max_tokens": MAX_TOKENS},
-    "decode": {"pixel_limit": 4_000_000},
+    "decode": {"pixel_limit": PIXEL_LIMIT},
     "output": {"dtype": "uint8"},
 })
 
@@ -79,9 +82,17 @@ def mutated(draw) -> tuple[str, bytes]:
 
 def check_case(ext: str, data: bytes) -> str:
     rec = Record(key="fuzz", url="mem://fuzz.tar", index=0, members={ext: data})
-    t0 = time.perf_counter()
+    decoded: list[int] = []  # stored pixels of each image decoded
+    real_decode = OpenedImage.decode
+
+    def counted(self, **kw):
+        decoded.append(self.width * self.height)
+        return real_decode(self, **kw)
+
+    paths_before = sum(decode_path_counts().values())
     try:
-        ps = process_record(rec, RECIPE, 0)
+        with mock.patch.object(OpenedImage, "decode", counted):
+            ps = process_record(rec, RECIPE, 0)
     except SampleError as err:
         outcome = f"skip:{err.stage}"
     else:
@@ -91,8 +102,9 @@ def check_case(ext: str, data: bytes) -> str:
         assert ps.patches.shape == (gh * gw, PATCH * PATCH * 3) and ps.patches.dtype == np.uint8
         assert ps.coords.min() >= 0 and (ps.coords.max(axis=0) < np.array([gh, gw])).all()
         outcome = "ok"
-    elapsed = time.perf_counter() - t0
-    assert elapsed < 2.0, f"{elapsed:.2f} s for {len(data)} bytes of {ext}"
+    # Work bounded by counts: one decode at most, never of a header over the pixel limit.
+    assert len(decoded) <= 1 and all(p <= PIXEL_LIMIT for p in decoded), (decoded, len(data), ext)
+    assert sum(decode_path_counts().values()) - paths_before == len(decoded)  # no decode around the count
     return outcome
 
 

@@ -32,6 +32,7 @@ def test_first_fit_and_best_fit_differ_as_defined():
     bf, _ = assign_rows(sizes, seq_len=10, rows=2, algorithm="best_fit")
     # first fit: 6 -> row0, 5 -> row1, 3 -> row0 (first with room). best fit: 3 -> row1 (5 left) vs row0 (4 left) -> row0.
     assert ff == [[0, 2], [1]]
+    assert bf == [[0, 2], [1]]  # here the tightest row is also the first one
     sizes = [4, 7, 2]
     bf, _ = assign_rows(sizes, seq_len=10, rows=2, algorithm="best_fit")
     ff, _ = assign_rows(sizes, seq_len=10, rows=2, algorithm="first_fit")
@@ -165,7 +166,9 @@ def test_largest_first_pads_less_than_first_fit_and_caps_the_wait():
     pad_lf, wait_lf = _stream_padding_and_waits("largest_first")
     pad_ff, _ = _stream_padding_and_waits("first_fit")
     assert pad_lf < pad_ff
-    assert wait_lf <= MAX_WAIT_BATCHES + 1
+    # An image arriving while batch e is being filled goes out in batch e + MAX_WAIT_BATCHES at the
+    # latest (it goes first once it has waited that many batches, and any image fits an empty row).
+    assert wait_lf <= MAX_WAIT_BATCHES
 
 
 def test_packer_restore_keeps_waits():
@@ -250,3 +253,102 @@ def test_packer_state_needs_images_read_from_shards():
     packer.push(ps(2, "loose"))
     with pytest.raises(ValueError, match="loose"):
         packer.state_dict()
+
+
+# ----------------------------------------------------------------------------- exact thresholds
+
+
+def test_a_small_image_goes_out_after_exactly_eight_batches_of_bigger_ones():
+    """README: "an image that has waited 8 batches goes first". A 1-token image behind a stream of
+    row-filling 10-token images loses to them in batches 0..7 and goes out, alone, in batch 8."""
+    assert MAX_WAIT_BATCHES == 8
+    packer = Packer(seq_len=10, rows=1, buffer=1, algorithm="largest_first")
+    out = packer.push(ps(1, "small"))
+    for i in range(12):
+        out += packer.push(ps(10, f"big{i}"))
+    big = [[f"big{i}"] for i in range(12)]
+    assert [b.keys[0] for b in out] == big[:8] + [["small"]] + big[8:11]
+    assert [p.key for p in packer.pending] == ["big11"] and packer.waited() == [1]  # passed over once
+
+
+def test_the_wait_guard_is_what_bounds_the_wait():
+    """Without the waits, largest_first would leave the small image behind for ever: the guard, not
+    the stream, gets it out (so the test above can fail)."""
+    sizes = [1] + [10] * 9
+    rows, left = assign_rows(sizes, seq_len=10, rows=1, algorithm="largest_first")
+    assert rows == [[1]] and 0 in left
+    rows, left = assign_rows(sizes, seq_len=10, rows=1, algorithm="largest_first", waited=[8] + [0] * 9)
+    assert rows == [[0]] and left == list(range(1, 10))
+
+
+@pytest.mark.parametrize("algorithm", sorted(ALGORITHMS))
+def test_a_row_takes_an_image_of_exactly_its_free_tokens_and_exactly_cap_images(algorithm):
+    """Both row limits are inclusive: an image of exactly the free tokens fits, and a row holds
+    exactly max_images_per_row images, not one more."""
+    rows, left = assign_rows([4, 6], seq_len=10, rows=1, algorithm=algorithm)
+    assert sorted(rows[0]) == [0, 1] and left == []
+    rows, left = assign_rows([4, 7], seq_len=10, rows=1, algorithm=algorithm)
+    assert len(rows[0]) == 1 and len(left) == 1
+    rows, left = assign_rows([1, 1, 1, 1], seq_len=10, rows=1, max_images_per_row=3, algorithm=algorithm)
+    assert len(rows[0]) == 3 and len(left) == 1
+    rows, left = assign_rows([10], seq_len=10, rows=1, algorithm=algorithm)
+    assert rows == [[0]] and left == []
+
+
+def test_packer_emits_exactly_when_the_buffer_and_the_tokens_are_both_reached():
+    """A batch is assembled at the push that makes the look-ahead hold `buffer` images and a batch's
+    worth (rows x seq_len) of tokens, not one push earlier or later."""
+    packer = Packer(seq_len=10, rows=2, max_images_per_row=4, buffer=4)
+    assert packer.push(ps(5, "a")) == [] and packer.push(ps(5, "b")) == [] and packer.push(ps(5, "c")) == []
+    assert packer.pending_tokens == 15
+    out = packer.push(ps(5, "d"))  # 4 images, 20 tokens = 2 rows x 10: both thresholds met exactly
+    assert len(out) == 1 and out[0].num_tokens == 20 and not packer.pending
+    few = Packer(seq_len=10, rows=2, max_images_per_row=4, buffer=5)
+    assert [b for k in "abcd" for b in few.push(ps(5, k))] == []  # 20 tokens but only 4 < 5 images
+    thin = Packer(seq_len=10, rows=2, max_images_per_row=4, buffer=2)
+    assert [b for k in "abc" for b in thin.push(ps(5, k))] == []  # 3 images but 15 < 20 tokens
+    assert len(thin.push(ps(5, "d"))) == 1
+
+
+def test_packer_defaults_are_the_recipe_defaults():
+    """A Packer built by hand behaves like the recipe's default packing section."""
+    from patchloom import Recipe
+
+    p = Recipe.from_dict({}).packing
+    packer = Packer(seq_len=p.seq_len, rows=p.rows)
+    assert (packer.max_images_per_row, packer.buffer, packer.algorithm) == (p.max_images_per_row, p.lookahead,
+                                                                           p.algorithm)
+
+
+def test_rows_opened_as_needed_start_empty():
+    """rows=None: each new row has the whole seq_len and room for max_images_per_row images."""
+    for algorithm in sorted(ALGORITHMS):
+        rows, left = assign_rows([1, 1, 1, 1, 1], seq_len=10, rows=None, max_images_per_row=2, algorithm=algorithm)
+        assert rows == [[0, 1], [2, 3], [4]] and left == [], algorithm
+        rows, _ = assign_rows([6, 4, 6, 4], seq_len=10, rows=None, max_images_per_row=4, algorithm=algorithm)
+        assert all(sum([6, 4, 6, 4][i] for i in r) <= 10 for r in rows) and len(rows) == 2, algorithm
+
+
+def test_an_unknown_algorithm_is_a_value_error_naming_the_known_ones():
+    with pytest.raises(ValueError, match="largest_first, first_fit, best_fit, in_order"):
+        assign_rows([1], seq_len=4, rows=1, algorithm="worst_fit")
+
+
+def test_build_batch_of_no_images_is_all_padding_when_told_the_patch_shape():
+    from patchloom.packing.packer import build_batch
+
+    b = build_batch([], [[], []], seq_len=4, max_images_per_row=3, patch_dim=6, dtype=np.float16)
+    assert b.patches.shape == (2, 4, 6) and b.patches.dtype == np.float16 and not b.patches.any()
+    assert not b.segment_ids.any() and (b.labels == -1).all() and b.keys == [[], []]
+    with pytest.raises(ValueError, match="an empty batch needs patch_dim and dtype"):
+        build_batch([], [[]], seq_len=4, max_images_per_row=3)
+
+
+def test_restore_without_waits_counts_them_as_zero_and_a_directly_set_buffer_counts_from_now():
+    packer = Packer(seq_len=10, rows=1, buffer=8, algorithm="largest_first")
+    packer.restore([ps(3, "a"), ps(4, "b")])
+    assert packer.waited() == [0, 0]
+    direct = Packer(seq_len=10, rows=1, buffer=8, algorithm="largest_first")
+    direct.pending = [ps(3, "a"), ps(4, "b"), ps(5, "c")]  # set by hand: nothing has waited yet
+    assert [b.keys for b in direct.flush()] == [[["c", "b"]], [["a"]]]
+    assert direct.emitted == 2 and direct.pending == []

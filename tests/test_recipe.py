@@ -126,7 +126,7 @@ def test_unknown_key_without_a_close_match_lists_allowed_only():
     ("data", "hint"),
     [
         ({"sizing": {"seq_len": 64}}, "did you mean 'packing.seq_len'?"),
-        ({"max_tokens": 64}, "did you mean 'sizing.max_tokens'?"),
+        ({"max_tokens": 64}, "did you mean 'sizing.max_tokens' or 'text.max_tokens' or 'video.max_tokens'?"),
         ({"packing": {"seed": 1}}, "did you mean 'seed'?"),
     ],
 )
@@ -575,6 +575,7 @@ BASES = [
         "drop": {"mode": "random", "rate": 0.25},
         "epoch": {"samples": 100},
     },
+    {"sizing": {"grid_multiple": 2}},  # output.token_order windows needs windows
 ]
 
 

@@ -59,7 +59,7 @@ def test_recipe_streams_demo_shards(path, demo_dir):
         if recipe.drop.output == "mask" and recipe.drop.mode != "none":
             assert batch.masked is not None and not batch.masked[batch.segment_ids == 0].any()
     p = recipe.packing
-    assert shapes == {(p.rows, p.seq_len, recipe.sizing.patch_size ** 2 * 3)}
+    assert shapes == {(p.rows, p.seq_len, recipe.sizing.temporal_patch * recipe.sizing.patch_size ** 2 * 3)}
     led = pipe.ledger
     assert led.emitted > 0 and led.read == led.emitted + len(led.skipped)
 
@@ -104,14 +104,20 @@ def test_mask_mode_flags_tokens_at_the_asked_rate(demo_dir):
 def test_resume_with_augmentation_is_exact(demo_dir):
     recipe = Recipe.from_dict(AUGMENTED)
     shards = demo_shard_pattern(demo_dir)
-    full = list(Pipeline(recipe, shards))
+    whole = Pipeline(recipe, shards)
+    full = list(whole)
     pipe = Pipeline(recipe, shards)
     it = iter(pipe)
     for _ in range(2):
         next(it)
     resumed = Pipeline(recipe, shards)
     resumed.load_state_dict(pipe.state_dict())
-    rest = list(resumed)
+    rest = []
+    for batch in resumed:
+        rest.append(batch)
+        led = resumed.ledger
+        assert led.read == led.emitted + led.skipped_count + resumed.in_buffer
+    assert resumed.ledger.to_dict() == whole.ledger.to_dict()
     assert len(rest) == len(full) - 2
     for x, y in zip(rest, full[2:]):
         np.testing.assert_array_equal(x.patches, y.patches)

@@ -58,15 +58,35 @@ document.getElementById("report").addEventListener("load", function () {
 """
 
 
-@pytest.fixture(scope="module")
-def chromium() -> str:
+def under_ci() -> bool:
+    """CI=true (or 1, yes), as CI services set it: there a missing browser is an error, not a skip."""
+    return os.environ.get("CI", "").strip().lower() in ("true", "1", "yes")
+
+
+def require_chromium() -> str:
+    """The Chromium executable; fails under CI (.ci/run installs it), skips elsewhere."""
     exe = find_chromium()
     if exe is None:
         message = "Chromium not found (install the `chromium` package, or put chromium on PATH)"
-        if os.environ.get("CI"):
-            pytest.fail(message + "; CI installs it, so its absence there is an error")
+        if under_ci():
+            pytest.fail(message + "; CI installs it (.ci/run), so its absence there is an error")
         pytest.skip(message)
     return exe
+
+
+@pytest.fixture(scope="module")
+def chromium() -> str:
+    return require_chromium()
+
+
+@pytest.mark.parametrize(("ci", "outcome"), [("true", pytest.fail.Exception), ("1", pytest.fail.Exception),
+                                             ("", pytest.skip.Exception), ("false", pytest.skip.Exception)])
+def test_a_missing_chromium_fails_under_ci_and_skips_elsewhere(monkeypatch, ci, outcome):
+    """This runs without a browser: the browser tests cannot be silently absent in CI."""
+    monkeypatch.setitem(globals(), "find_chromium", lambda: None)
+    monkeypatch.setenv("CI", ci)
+    with pytest.raises(outcome):
+        require_chromium()
 
 
 @pytest.fixture(scope="module")

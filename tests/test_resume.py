@@ -26,6 +26,17 @@ def keys_of(pipe) -> list[str]:
     return [k for b in pipe for row in b.keys for k in row]
 
 
+def checked_keys(pipe) -> list[str]:
+    """keys_of(pipe), checking read == emitted + skipped + in_buffer after every batch."""
+    keys = []
+    for b in pipe:
+        led = pipe.ledger
+        assert led.read == led.emitted + led.skipped_count + pipe.in_buffer, (led.to_dict(), pipe.in_buffer)
+        keys += [k for row in b.keys for k in row]
+    assert pipe.in_buffer == 0
+    return keys
+
+
 @pytest.mark.parametrize("path", RECIPES, ids=[p.name for p in RECIPES])
 def test_every_recipe_resumes_exactly(path, demo_dir):
     recipe = Recipe.from_file(path).replace(packing={"rows": 2, "lookahead": 12})
@@ -191,4 +202,78 @@ def test_state_taken_after_set_epoch_starts_the_new_epoch(tmp_path):
     resumed = Pipeline(recipe, shards=shards)
     resumed.load_state_dict(state)
     assert resumed.epoch == 1
-    assert keys_of(resumed) == keys_of(fresh) and len(keys_of(fresh)) == 12
+    assert checked_keys(resumed) == checked_keys(fresh) and len(keys_of(fresh)) == 12
+    assert resumed.ledger.to_dict() == fresh.ledger.to_dict()
+
+
+def test_a_resumed_run_continues_the_ledger_at_every_batch(tmp_path):
+    """After each batch, a run resumed mid-epoch has exactly the ledger of the uninterrupted run after
+    the same batch (read, emitted, skipped, in buffer), and both end with every sample counted once."""
+    paths = make_shards(tmp_path, 3, 10)
+    recipe = Recipe.from_dict(SMALL)
+    full = Pipeline(recipe, paths)
+    after, states = [], []
+    for _ in full:
+        after.append(full.ledger.to_dict())
+        states.append(json.loads(json.dumps(full.state_dict())))
+    assert after[-1]["read"] == after[-1]["emitted"] == 30 and after[-1]["in_buffer"] == 0
+    for start in (1, len(after) // 2):
+        resumed = Pipeline(recipe, paths)
+        resumed.load_state_dict(states[start - 1])
+        seen = [resumed.ledger.to_dict() for _ in resumed]
+        assert seen == after[start:], start
+
+
+def test_check_resume_catches_a_resume_that_forgets_the_saved_ledger(tmp_path):
+    """A resume that restores the reader, buffer and packer but starts the ledger from zero makes the
+    same batches; check_resume must still fail, at the first batch after the resume."""
+    paths = make_shards(tmp_path, 2, 12)
+    recipe = Recipe.from_dict(SMALL)
+    made = []
+
+    def make():
+        made.append(1)
+        pipe = Pipeline(recipe, paths)
+        if len(made) > 1:
+            original = pipe.load_state_dict
+
+            def forgetful(state):
+                blank = Pipeline(recipe, paths).state_dict()["ledger"]
+                original({**state, "ledger": {**blank, "shards_planned": state["ledger"]["shards_planned"]}})
+
+            pipe.load_state_dict = forgetful
+        return pipe
+
+    with pytest.raises(AssertionError, match=r"resumed at batch [1-9]\d*, batch [1-9]\d*: ledger does not balance"):
+        check_resume(make, every=1)
+
+
+@pytest.mark.parametrize(("version", "words"), [
+    (1, "older patchloom"), (STATE_VERSION - 1, "older patchloom"), (0, "unknown state version 0"),
+    (-1, "unknown state version -1"), (STATE_VERSION + 1, f"unknown state version {STATE_VERSION + 1}"),
+    ("3", "unknown state version '3'"), (None, "unknown state version None"),
+])
+def test_state_versions_at_the_edges_get_the_right_message(version, words):
+    """Only 1 .. STATE_VERSION - 1 are states of an older patchloom; anything else is not ours."""
+    from patchloom.pipeline import check_state_version
+
+    check_state_version(STATE_VERSION)
+    with pytest.raises(StateError, match=words):
+        check_state_version(version)
+
+
+def test_a_pipeline_not_started_holds_nothing_and_a_loaded_state_is_handed_back_as_loaded(tmp_path):
+    paths = make_shards(tmp_path, 2, 6)
+    recipe = Recipe.from_dict(SMALL)
+    fresh = Pipeline(recipe, paths)
+    assert fresh.in_buffer == 0 and fresh.ledger.read == 0
+    pipe = Pipeline(recipe, paths)
+    it = iter(pipe)
+    next(it)
+    state = json.loads(json.dumps(pipe.state_dict()))
+    again = Pipeline(recipe, paths)
+    again.load_state_dict(state)
+    assert again.in_buffer == 0  # nothing is read back before the first batch is asked for
+    assert again.state_dict() == state  # loaded, not iterated: the loaded state still stands
+    assert again.state_dict(with_shards=False) == {k: v for k, v in state.items() if k != "shards"}
+    assert "shards" not in pipe.state_dict(with_shards=False) and pipe.state_dict()["shards"] == state["shards"]

@@ -190,6 +190,42 @@ def test_native_grows_tiny_images_to_min_tokens():
     assert (plan.grid_h, plan.grid_w) == (8, 8)  # the smallest square with >= 64 tokens
 
 
+def test_native_at_exactly_the_budget_keeps_the_native_grid():
+    """"Only shrunk when over budget": a native grid of exactly max_tokens stays as it is; one token
+    less of budget and it is shrunk. 100x300 at patch 16 is 6.25 x 18.75 -> 6 x 19 = 114 tokens."""
+    plan = plan_size(100, 300, sizing(mode="native", patch_size=16, max_tokens=114))
+    assert (plan.grid_h, plan.grid_w) == (6, 19)
+    shrunk = plan_size(100, 300, sizing(mode="native", patch_size=16, max_tokens=113))
+    assert shrunk.grid_h * shrunk.grid_w <= 113
+
+
+def test_native_at_exactly_min_tokens_keeps_the_native_grid():
+    """"Only grown when under min_tokens": 24x56 at patch 16 is 1.5 x 3.5 -> 2 x 4 = 8 tokens
+    (Python rounds halves to even). At min_tokens 8 it stays 2 x 4 (re-planning would give the
+    closer aspect 2 x 5); at min_tokens 9 it is grown."""
+    plan = plan_size(24, 56, sizing(mode="native", patch_size=16, max_tokens=64, min_tokens=8))
+    assert (plan.grid_h, plan.grid_w) == (2, 4)
+    grown = plan_size(24, 56, sizing(mode="native", patch_size=16, max_tokens=64, min_tokens=9))
+    assert grown.grid_h * grown.grid_w >= 9
+
+
+@pytest.mark.parametrize(("h", "w"), [(100, 300), (24, 56), (70, 90), (333, 130), (16, 400), (250, 250)])
+def test_native_thresholds_are_inclusive(h, w):
+    """At max_tokens == native tokens and at min_tokens == native tokens the native grid is kept;
+    one past either threshold and it changes. Native grid: each side / 16 rounded, at least 1."""
+    gh, gw = max(1, round(h / 16)), max(1, round(w / 16))
+    n = gh * gw
+    for cfg in (sizing(mode="native", patch_size=16, max_tokens=n),
+                sizing(mode="native", patch_size=16, max_tokens=4 * n, min_tokens=n)):
+        plan = plan_size(h, w, cfg)
+        assert (plan.grid_h, plan.grid_w) == (gh, gw), cfg
+    if n > 1:
+        over = plan_size(h, w, sizing(mode="native", patch_size=16, max_tokens=n - 1))
+        assert over.grid_h * over.grid_w <= n - 1
+    under = plan_size(h, w, sizing(mode="native", patch_size=16, max_tokens=4 * n, min_tokens=n + 1))
+    assert under.grid_h * under.grid_w >= n + 1
+
+
 # ----------------------------------------------------------------------------- fixed mode
 
 
@@ -405,10 +441,69 @@ def test_resize_to_plan_refuses_another_picture():
 
 
 def test_plan_size_rejects_empty_images():
-    with pytest.raises(ValueError):
+    with pytest.raises(ValueError, match=r"image has no pixels \(10x0\)"):
         plan_size(0, 10, sizing())
-    with pytest.raises(ValueError):
+    with pytest.raises(ValueError, match=r"image has no pixels \(0x10\)"):
         plan_size(10, 0, sizing())
+    plan = plan_size(1, 1, sizing(patch_size=16, max_tokens=4))  # one pixel is an image
+    assert plan.crop == (0, 0, 1, 1) and plan.tokens >= 1
+
+
+def test_plan_size_of_a_region_plans_the_region():
+    """region (left, top, right, bottom): the plan's crop is the region and its grid follows the
+    region's aspect (here 100 x 50 pixels, 2:1 wide), not the whole image's (3:4 tall)."""
+    cfg = sizing(patch_size=16, max_tokens=32, mode="budget")
+    plan = plan_size(400, 300, cfg, region=(10, 20, 110, 70))
+    assert plan.crop == (10, 20, 110, 70) and plan.source == (400, 300)
+    assert (plan.grid_h, plan.grid_w) == (4, 8)  # the 2:1 grid in [28, 32] tokens (brute force: only 4 x 8)
+    with pytest.raises(ValueError, match="not inside"):
+        plan_size(400, 300, cfg, region=(10, 20, 310, 70))
+    with pytest.raises(ValueError, match="not inside"):
+        plan_size(400, 300, cfg, region=(10, 20, 10, 70))
+
+
+def test_resize_to_plan_takes_a_plan_made_by_hand():
+    """A SizePlan built without `source` is applied to the image it is given (the crop in its pixels)."""
+    from patchloom.image.sizing import SizePlan
+
+    rng = np.random.default_rng(0)
+    img = Image.fromarray(rng.integers(0, 256, (40, 60, 3), dtype=np.uint8))
+    plan = SizePlan(grid_h=1, grid_w=2, patch_size=8, crop=(0, 0, 60, 40), content_h=8, content_w=16)
+    assert plan.source == (0, 0)
+    out = resize_to_plan(img, plan, resample="bilinear")
+    assert out.size == (16, 8)
+    np.testing.assert_array_equal(np.asarray(out), np.asarray(img.resize((16, 8), Image.Resampling.BILINEAR)))
+
+
+def test_draw_crop_keeps_a_share_of_the_area_with_the_image_aspect_jittered():
+    """crop.area and crop.aspect_jitter (README): each box lies inside the image, keeps a share of the
+    area within `area` and has the image's w/h times a factor within `aspect_jitter` (both up to
+    rounding to whole pixels); mode none, or a draw that cannot fit, keeps the whole image."""
+    from patchloom.image.sizing import draw_crop
+    from patchloom.recipe.schema import CropConfig
+
+    cfg = CropConfig(mode="random", area=(0.3, 0.6), aspect_jitter=(0.8, 1.25))
+    rng = np.random.default_rng(1)
+    h, w = 300, 400
+    lefts, tops = set(), set()
+    for _ in range(500):
+        left, top, right, bottom = draw_crop(h, w, cfg, rng)
+        assert 0 <= left < right <= w and 0 <= top < bottom <= h
+        cw, ch = right - left, bottom - top
+        share = cw * ch / (h * w)
+        assert 0.3 - 0.01 <= share <= 0.6 + 0.01, share
+        factor = (cw / ch) / (w / h)
+        assert 0.8 - 0.01 <= factor <= 1.25 + 0.01, factor
+        lefts.add(left)
+        tops.add(top)
+    assert min(lefts) == 0 or len(lefts) > 50  # positions spread over the free room
+    assert len(tops) > 50
+    assert draw_crop(h, w, CropConfig(mode="none"), rng) == (0, 0, w, h)
+    # A 1-pixel-high image cannot give a box of half its area with a jittered aspect: whole image.
+    tall = CropConfig(mode="random", area=(0.5, 0.5), aspect_jitter=(2.0, 2.0))
+    assert draw_crop(1, 1, tall, rng) == (0, 0, 1, 1)
+    exact = CropConfig(mode="random", area=(1.0, 1.0), aspect_jitter=(1.0, 1.0))
+    assert draw_crop(h, w, exact, rng) == (0, 0, w, h)  # a box of the whole image fits exactly
 
 
 # --- the SIZING_MODES and RESAMPLE_FILTERS tables --------------------------------------------
@@ -454,7 +549,10 @@ def test_every_resample_filter_in_the_table_is_reached_through_resize_to_plan():
     outs = set()
     for name, filt in RESAMPLE_FILTERS.items():
         out = resize_to_plan(img, plan, resample=name)
-        np.testing.assert_array_equal(np.asarray(out), np.asarray(img.resize((plan.width, plan.height), filt)))
+        size = (plan.width, plan.height)
+        want = img.resize(size, filt) if isinstance(filt, Image.Resampling) else filt(np.asarray(img), size,
+                                                                                        (0, 0, 83, 57))
+        np.testing.assert_array_equal(np.asarray(out), np.asarray(want))
         outs.add(out.tobytes())
     assert len(outs) == len(RESAMPLE_FILTERS)  # each name really picks its own filter
     with pytest.raises(ValueError, match=r"unknown resample filter 'cubic'.*sizing\.resample.*bicubic"):

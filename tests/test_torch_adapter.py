@@ -116,8 +116,11 @@ def test_loader_state_resumes_exactly(tmp_path, num_workers):
     def loader():
         return PatchloomLoader(PatchloomDataset(recipe, paths, epoch=1), num_workers=num_workers)
 
-    full = list(loader())
+    whole = loader()
+    full = list(whole)
     assert len(full) >= 6
+    end = {k: whole.ledger.to_dict()[k] for k in ("read", "emitted", "skipped", "in_buffer")}
+    assert end == {"read": 42, "emitted": 42, "skipped": 0, "in_buffer": 0}
     for pos in (0, 1, 2, 3, len(full) - 1, len(full)):
         first = loader()
         it = iter(first)
@@ -129,6 +132,7 @@ def test_loader_state_resumes_exactly(tmp_path, num_workers):
         again.load_state_dict(state)
         rest = list(again)
         assert [b["keys"] for b in rest] == [b["keys"] for b in full[pos:]], f"position {pos}"
+        assert {k: again.ledger.to_dict()[k] for k in end} == end, f"position {pos}"  # counts carried on
         for a, b in zip(rest, full[pos:]):
             assert torch.equal(a["patches"], b["patches"]) and torch.equal(a["segment_ids"], b["segment_ids"])
 

@@ -5,6 +5,11 @@ registry package, bundled with the package so no download is needed): astronaut,
 chelsea, rocket, immunohistochemistry, hubble_deep_field (RGB) and camera, coins, moon
 (grayscale). They are written as PNG members of a small webdataset-style tar shard
 (`{key}.png` + `{key}.cls`) and read back through `patchloom.Pipeline`.
+
+Expected values are computed without patchloom: the grid by brute force over every integer grid
+under the rule the README states for budget mode (at least 85 % of max_tokens, the aspect closest
+to the photo's; ties to more tokens, then the taller grid), the pixels with Pillow's own bicubic
+resize (the filter the recipe names) cut into patches by plain numpy indexing.
 """
 
 from __future__ import annotations
@@ -20,7 +25,6 @@ from PIL import Image
 skdata = pytest.importorskip("skimage.data")
 
 from patchloom import Pipeline, Recipe, image_to_patches  # noqa: E402
-from patchloom.image.sizing import plan_size  # noqa: E402
 
 PHOTOS = [
     "astronaut",
@@ -49,6 +53,38 @@ def _recipe(shards=None) -> Recipe:
         "sizing": {"patch_size": P, "max_tokens": BUDGET, "resample": "bicubic"},
         "packing": {"seq_len": 512, "rows": 2, "lookahead": 3, "max_images_per_row": 4},
     })
+
+
+def brute_best_grid(h: int, w: int, lo: int, hi: int) -> tuple[int, int]:
+    """Among all grids with lo <= gh*gw <= hi, the one whose gh/gw is closest to h/w in log ratio;
+    ties go to more tokens, then to the taller grid. Plain loops over every candidate."""
+    best = None
+    for gh in range(1, hi + 1):
+        for gw in range(max(1, -(-lo // gh)), hi // gh + 1):
+            key = (round(abs(math.log(gh / gw) - math.log(h / w)), 12), -gh * gw, -gh)
+            if best is None or key < best[0]:
+                best = (key, (gh, gw))
+    assert best is not None
+    return best[1]
+
+
+def budget_grid(h: int, w: int, budget: int = BUDGET) -> tuple[int, int]:
+    """The budget-mode grid: tokens in [ceil(0.85 * budget), budget] (integer arithmetic)."""
+    return brute_best_grid(h, w, -(-85 * budget // 100), budget)
+
+
+def reference_tokens(arr: np.ndarray, grid: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
+    """(patches [N, P*P*3] in raster order, coords [N, 2]) of the photo resized by Pillow's bicubic
+    filter to grid * P pixels; each patch flattened in (row, col, channel) order."""
+    gh, gw = grid
+    rgb = Image.fromarray(arr).convert("RGB")
+    pixels = np.asarray(rgb.resize((gw * P, gh * P), Image.Resampling.BICUBIC))
+    patches, coords = [], []
+    for r in range(gh):
+        for c in range(gw):
+            patches.append(pixels[r * P:(r + 1) * P, c * P:(c + 1) * P].reshape(-1))
+            coords.append((r, c))
+    return np.stack(patches), np.array(coords)
 
 
 def _write_shards(tmp_path, photos) -> list[str]:
@@ -80,13 +116,18 @@ def test_photos_are_the_expected_sample_images(photos):
 
 @pytest.mark.parametrize("name", PHOTOS)
 def test_image_to_patches_on_sample_photos(name, photos):
-    """Source: skimage.data photos; grid keeps the photo's aspect under the budget."""
+    """Source: skimage.data photos; the grid is the brute-force best one under the budget, the tokens
+    are Pillow's bicubic resize of the photo, cut into patches."""
     arr = photos[name]
     h, w = arr.shape[:2]
     recipe = _recipe()
     ps = image_to_patches(arr, recipe, key=name)
     gh, gw = ps.grid
+    assert (gh, gw) == budget_grid(h, w)
     assert ps.patches.shape == (gh * gw, P * P * 3) and ps.patches.dtype == np.uint8
+    ref_patches, ref_coords = reference_tokens(arr, (gh, gw))
+    np.testing.assert_array_equal(ps.patches, ref_patches)
+    np.testing.assert_array_equal(ps.coords, ref_coords)
     assert 100 * gh * gw >= 85 * BUDGET and gh * gw <= BUDGET
     assert abs(math.log((gh / gw) / (h / w))) < 0.08  # aspect kept to within 8 %
     # Tokens carry the picture: the mean colour survives the resize closely.
@@ -101,7 +142,7 @@ def test_image_to_patches_on_sample_photos(name, photos):
 
 def test_pipeline_over_a_shard_of_sample_photos(tmp_path, photos):
     """Source: skimage.data photos in a webdataset-style tar; every photo comes out exactly once,
-    on its planned grid, with the same tokens image_to_patches gives for the same key."""
+    on the brute-force best grid, with the tokens of Pillow's bicubic resize."""
     shards = _write_shards(tmp_path, photos)
     recipe = _recipe(shards)
     pipe = Pipeline(recipe)
@@ -113,14 +154,14 @@ def test_pipeline_over_a_shard_of_sample_photos(tmp_path, photos):
                 seen[key] = seen.get(key, 0) + 1
                 arr = photos[key]
                 h, w = arr.shape[:2]
-                plan = plan_size(h, w, recipe.sizing)
-                assert tuple(batch.grids[r, j]) == (plan.grid_h, plan.grid_w)
+                grid = budget_grid(h, w)
+                assert tuple(int(v) for v in batch.grids[r, j]) == grid
                 assert batch.labels[r, j] == PHOTOS.index(key)
                 idx = np.flatnonzero(batch.segment_ids[r] == j + 1)
-                ref = image_to_patches(arr, recipe, key=key)
-                assert len(idx) == ref.num_tokens == plan.grid_h * plan.grid_w
-                np.testing.assert_array_equal(batch.patches[r, idx], ref.patches)
-                np.testing.assert_array_equal(batch.coords[r, idx], ref.coords)
+                ref_patches, ref_coords = reference_tokens(arr, grid)
+                assert len(idx) == len(ref_patches) == grid[0] * grid[1]
+                np.testing.assert_array_equal(batch.patches[r, idx], ref_patches)
+                np.testing.assert_array_equal(batch.coords[r, idx], ref_coords)
     assert seen == {name: 1 for name in PHOTOS}
     ledger = pipe.ledger
     assert ledger.read == len(PHOTOS) and ledger.emitted == len(PHOTOS)
@@ -129,14 +170,19 @@ def test_pipeline_over_a_shard_of_sample_photos(tmp_path, photos):
 
 def test_sampled_budgets_agree_between_pipeline_and_image_to_patches(tmp_path, photos):
     """Source: skimage.data photos. In `sampled` mode each photo's budget is drawn from its own
-    (seed, epoch, key) generator, so the shard pipeline and image_to_patches agree per epoch."""
+    (seed, epoch, key) generator, so the shard pipeline and image_to_patches agree per epoch (a
+    consistency check between two routes); independently, each grid is the brute-force best grid of
+    some budget in the sampled range, and the tokens are Pillow's resize to it."""
     shards = _write_shards(tmp_path, photos)
     recipe = Recipe.from_dict({
         "seed": 5,
         "source": {"shards": shards, "shuffle_buffer": 3},
-        "sizing": {"mode": "sampled", "patch_size": P, "max_tokens": BUDGET, "sampled": {"range": [64, BUDGET]}},
+        "sizing": {"mode": "sampled", "patch_size": P, "max_tokens": BUDGET, "sampled": {"range": [64, BUDGET]},
+                   "resample": "bicubic"},
         "packing": {"seq_len": 512, "rows": 2, "lookahead": 4, "max_images_per_row": 4},
     })
+    allowed = {name: {budget_grid(*photos[name].shape[:2], budget=b) for b in range(64, BUDGET + 1)}
+               for name in PHOTOS}
     grids_by_epoch = []
     for epoch in (0, 1):
         grids = {}
@@ -147,6 +193,8 @@ def test_sampled_budgets_agree_between_pipeline_and_image_to_patches(tmp_path, p
                     assert tuple(int(v) for v in batch.grids[r, j]) == ref.grid
                     idx = np.flatnonzero(batch.segment_ids[r] == j + 1)
                     np.testing.assert_array_equal(batch.patches[r, idx], ref.patches)
+                    assert ref.grid in allowed[key]
+                    np.testing.assert_array_equal(ref.patches, reference_tokens(photos[key], ref.grid)[0])
                     grids[key] = ref.grid
         assert sorted(grids) == sorted(PHOTOS)
         grids_by_epoch.append(grids)
