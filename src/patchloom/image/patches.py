@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -94,9 +95,16 @@ def unpatchify(patches: np.ndarray, coords: np.ndarray, grid: tuple[int, int], p
 
 
 def grid_coords(grid_h: int, grid_w: int) -> np.ndarray:
-    """[gh*gw, 2] int32 (row, col) in raster order."""
+    """[gh*gw, 2] int32 (row, col) in raster order: a fresh copy of a cached array (grids repeat)."""
+    return _grid_coords(grid_h, grid_w).copy()
+
+
+@functools.lru_cache(maxsize=1024, typed=True)
+def _grid_coords(grid_h: int, grid_w: int) -> np.ndarray:
     rows, cols = np.divmod(np.arange(grid_h * grid_w, dtype=np.int32), np.int32(grid_w))
-    return np.stack([rows, cols], axis=1)
+    coords = np.stack([rows, cols], axis=1)
+    coords.flags.writeable = False
+    return coords
 
 
 def window_order(grid_h: int, grid_w: int, m: int) -> np.ndarray:

@@ -11,6 +11,7 @@ keys): `SIZING_MODES` (sizing.mode -> grid function, see `GridFn`) and `RESAMPLE
 
 from __future__ import annotations
 
+import functools
 import math
 import os
 from collections import Counter
@@ -195,11 +196,30 @@ def best_grid(aspect: float, lo: int, hi: int) -> tuple[int, int]:
     """
     if not 1 <= lo <= hi:
         raise ValueError(f"need 1 <= lo <= hi for a token window (got lo={lo}, hi={hi})")
+    return _best_grid(aspect, lo, hi)
+
+
+@functools.lru_cache(maxsize=64, typed=True)
+def _grid_rows(lo: int, hi: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every grid height with a width in lo..hi tokens, and its least and greatest width (read-only).
+
+    Cached: a recipe has only a few token windows, and this is the same for every image."""
     gh = np.arange(1, hi + 1, dtype=np.int64)
     w_lo = np.maximum(1, -(-lo // gh))  # ceil(lo / gh)
     w_hi = hi // gh
     ok = w_lo <= w_hi
-    gh, w_lo, w_hi = gh[ok], w_lo[ok], w_hi[ok]
+    rows = gh[ok], w_lo[ok], w_hi[ok]
+    for a in rows:
+        a.flags.writeable = False
+    return rows
+
+
+#: Images repeat sizes a lot, so best_grid's answers are kept in a bounded LRU cache per
+#: (aspect, lo, hi); the answer is a pure function of those, so a hit is the same grid.
+@functools.lru_cache(maxsize=4096, typed=True)
+def _best_grid(aspect: float, lo: int, hi: int) -> tuple[int, int]:
+    """best_grid's search, after its window was checked."""
+    gh, w_lo, w_hi = _grid_rows(lo, hi)
     ideal = gh / aspect
     log_target = np.log(aspect)
     best_err = None
