@@ -76,6 +76,16 @@ def photo_shard_pattern(out_dir: str | Path, shards: int = 4) -> str:
     return str(Path(out_dir) / f"{_STEM}{{{0:06d}..{shards - 1:06d}}}.tar")
 
 
+def corpus_is_current(stamp: Path, spec: dict, paths: list[Path]) -> bool:
+    """True when a corpus folder already holds every shard, made from the same spec (its stamp file)."""
+    if not (stamp.is_file() and all(p.is_file() for p in paths)):
+        return False
+    try:
+        return json.loads(stamp.read_text(encoding="utf-8")).get("spec") == spec
+    except (OSError, ValueError):
+        return False
+
+
 def make_photo_shards(out_dir: str | Path, *, images: int = 300, shards: int = 4, seed: int = 0,
                       large_share: float = 0.1, progress: bool = True) -> list[Path]:
     """Write `images` JPEGs into `shards` tar shards in `out_dir` (deterministic); return their paths.
@@ -93,12 +103,8 @@ def make_photo_shards(out_dir: str | Path, *, images: int = 300, shards: int = 4
     spec = {"images": images, "shards": shards, "seed": seed, "large_share": large_share}
     paths = [out / f"{_STEM}{s:06d}.tar" for s in range(shards)]
     stamp = out / "corpus.json"
-    if stamp.is_file() and all(p.is_file() for p in paths):
-        try:
-            if json.loads(stamp.read_text(encoding="utf-8")).get("spec") == spec:
-                return paths
-        except (OSError, ValueError):
-            pass
+    if corpus_is_current(stamp, spec, paths):
+        return paths
     rng = np.random.default_rng([seed, 0x9B07])
     sizes: list[int] = []
     with tqdm(total=images, desc="benchmark photos", unit="img", file=sys.stderr, disable=not progress,

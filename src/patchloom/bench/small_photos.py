@@ -23,6 +23,8 @@ import numpy as np
 from PIL import Image
 from tqdm import tqdm
 
+from .photos import corpus_is_current
+
 __all__ = ["SMALL_RGB_SOURCES", "SMALL_GREY_SOURCES", "make_small_photo_shards", "small_photo_shard_pattern",
            "small_photo_size"]
 
@@ -129,12 +131,8 @@ def make_small_photo_shards(out_dir: str | Path, *, images: int = 320, shards: i
     spec = {"corpus": "photos-small", "images": images, "shards": shards, "seed": seed}
     paths = [out / f"{_STEM}{s:06d}.tar" for s in range(shards)]
     stamp = out / "corpus.json"
-    if stamp.is_file() and all(p.is_file() for p in paths):
-        try:
-            if json.loads(stamp.read_text(encoding="utf-8")).get("spec") == spec:
-                return paths
-        except (OSError, ValueError):
-            pass
+    if corpus_is_current(stamp, spec, paths):
+        return paths
     sources = _load_sources()
     names = list(SMALL_RGB_SOURCES + SMALL_GREY_SOURCES)
     rng = np.random.default_rng([seed, 0x5A11])
