@@ -511,3 +511,29 @@ def test_unknown_drop_mode_names_the_recipe_key_and_the_known_modes() -> None:
     cfg = DropConfig(mode="random", rate=0.5).model_copy(update={"mode": "checkers"})
     with pytest.raises(ValueError, match=r"unknown drop mode 'checkers'.*drop\.mode.*none, random, block"):
         decide_drop(cfg, (4, 4), None, np.random.default_rng(0))
+
+
+def test_default_min_keep_is_zero_so_rate_one_can_drop_everything() -> None:
+    """Called directly, stripes and content keep nothing at rate 1 (min_keep defaults to 0); grid
+    always keeps its lattice (at least one token)."""
+    from patchloom.image.dropping import drop_content, drop_grid, drop_stripes
+
+    rng = np.random.default_rng(0)
+    assert not drop_stripes((3, 4), 1.0, rng).any()
+    assert not drop_content(noise_patches((3, 4)), 1.0, rng).any()
+    assert drop_grid((3, 4), 1.0, rng).sum() == 1  # stride 4 on a 3 x 4 grid: one row x one column
+    with pytest.raises(ValueError, match="stride must be >= 1"):
+        drop_grid((3, 4), None, rng, stride=0)
+    assert drop_grid((3, 4), None, rng, stride=1).all()
+
+
+def test_content_noise_also_reaches_a_two_patch_image() -> None:
+    """Two patches, variances 0 and a little more, rate 0.5, strong noise: the jitter sometimes keeps
+    the flat one (the choice near the cut is not deterministic), but mostly drops it."""
+    from patchloom.image.dropping import drop_content
+
+    patches = np.zeros((2, 12), np.uint8)
+    patches[1, ::2] = 2  # variance 1
+    kept_flat = sum(bool(drop_content(patches, 0.5, np.random.default_rng(i), noise=1.0)[0]) for i in range(200))
+    assert 0 < kept_flat < 100
+    assert not any(drop_content(patches, 0.5, np.random.default_rng(i), noise=0.0)[0] for i in range(20))

@@ -226,3 +226,24 @@ def test_an_epoch_with_one_sample_through_is_not_empty():
         check_not_empty(ledger(3, 3), shards=1, where="epoch 0")
     with pytest.raises(EmptyEpochError, match="hold no samples"):
         check_not_empty(Ledger(), shards=2, where="epoch 1")
+
+
+def test_merging_more_reasons_than_kept_counts_the_rest_together():
+    a, b = Ledger(), Ledger()
+    for i in range(20):
+        a.add_skip(Skip("/d/a.tar", f"a{i}", f"s{i}", "odd"))
+        b.add_skip(Skip("/d/b.tar", f"b{i}", f"s{i + 20}", "odd"))
+    m = Ledger.merged([a, b])
+    reasons = m.reasons()
+    assert len(reasons) == MAX_REASONS + 1 and reasons[OTHER_REASONS] == 40 - MAX_REASONS
+    assert sum(reasons.values()) == 40 and m.skipped_count == 40
+    again = Ledger.merged([a, a])  # the same reasons twice: counted under their names, not OTHER
+    assert again.reasons() == {k: 2 * v for k, v in a.reasons().items()}
+
+
+def test_a_certain_verdict_after_every_shard_is_not_called_early():
+    led = Ledger(shards_planned=10, shards_read=10, shards_failed=2)
+    led.add_shard_error(Skip("/d/x.tar", "", "read", "cut"))
+    with pytest.raises(SkipRatioError) as info:
+        check_skip_guard(led, 0.1, final=False)
+    assert "stopped after" not in str(info.value)

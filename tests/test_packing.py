@@ -352,3 +352,61 @@ def test_restore_without_waits_counts_them_as_zero_and_a_directly_set_buffer_cou
     direct.pending = [ps(3, "a"), ps(4, "b"), ps(5, "c")]  # set by hand: nothing has waited yet
     assert [b.keys for b in direct.flush()] == [[["c", "b"]], [["a"]]]
     assert direct.emitted == 2 and direct.pending == []
+    items = [ps(3, "a"), ps(4, "b")]
+    for i, item in enumerate(items):
+        item.meta.update(shard="s.tar", index=i)
+    direct.pending = list(items)  # after two batches: waits count from now, for every item
+    assert direct.waited() == [0, 0]
+    direct.pending = list(items)
+    assert direct.state_dict() == {"pending": [["s.tar", 0, 0], ["s.tar", 1, 0]]}
+
+
+def test_a_saved_state_carries_each_pending_image_s_wait():
+    """The state's third column is batches waited (emitted since arrival), for a packer that has
+    emitted some batches already."""
+    packer = Packer(seq_len=10, rows=1, buffer=1, algorithm="largest_first")
+    small = ps(1, "small")
+    small.meta.update(shard="s.tar", index=0)
+    packer.push(small)
+    for i in range(3):
+        big = ps(10, f"big{i}")
+        big.meta.update(shard="s.tar", index=i + 1)
+        packer.push(big)
+    assert packer.emitted == 3 and packer.waited() == [3]
+    assert packer.state_dict() == {"pending": [["s.tar", 0, 3]]}
+
+
+def test_a_sample_of_several_images_is_one_unit_named_by_its_first_image():
+    from patchloom.packing.packer import Sample, as_unit
+
+    a, b = ps(2, "first"), ps(3, "second")
+    a.meta["shard"] = "a.tar"
+    b.meta["shard"] = "b.tar"
+    sample = as_unit([a, b])
+    assert isinstance(sample, Sample) and sample.key == "first" and sample.meta["shard"] == "a.tar"
+    assert sample.num_tokens == 5
+    assert as_unit([a]) is a and as_unit(a) is a and as_unit(sample) is sample
+    for bad in ([], [a, "not a PatchSet"]):
+        with pytest.raises(TypeError, match="non-empty list"):
+            as_unit(bad)
+
+
+def test_a_buffer_of_one_emits_at_the_first_full_batch():
+    for buffer in (1, 0):  # a buffer below one counts as one
+        packer = Packer(seq_len=10, rows=1, buffer=buffer)
+        assert packer.buffer == 1
+        assert len(packer.push(ps(10, "full"))) == 1 and not packer.pending
+
+
+def test_temporal_tokens_carry_their_slice_and_segments_their_frames():
+    """With times (a temporal recipe), the batch has times int32 [B, L] (each token's slice, 0 on
+    padding and for still images) and frames int32 [B, S] (slices per segment, 0 where absent)."""
+    clip = PatchSet(np.ones((4, 12), np.uint8), grid_coords(1, 2).repeat(2, axis=0), (1, 2), "clip", 1,
+                    times=np.array([0, 0, 1, 1], np.int32), frames=2)
+    still = PatchSet(np.ones((2, 12), np.uint8), grid_coords(1, 2), (1, 2), "still", 2,
+                     times=np.zeros(2, np.int32), frames=1)
+    b = pack([clip, still], seq_len=8, max_images_per_row=3)
+    assert b.times.dtype == np.int32 and b.frames.dtype == np.int32
+    assert b.times.tolist() == [[0, 0, 1, 1, 0, 0, 0, 0]] and b.frames.tolist() == [[2, 1, 0]]
+    plain = pack([ps(2, "a"), ps(3, "b")], seq_len=8)
+    assert plain.times is None and plain.frames is None

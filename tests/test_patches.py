@@ -67,10 +67,13 @@ def test_unpatchify_puts_patches_back_and_fills_missing_cells():
         np.testing.assert_array_equal(cell, expect)
     shuffled = np.array([4, 1, 3, 0, 5, 2])  # order does not matter: coords place each patch
     np.testing.assert_array_equal(unpatchify(patches[shuffled], coords[shuffled], (2, 3), 3), image)
+    default = unpatchify(patches[keep], coords[keep], (2, 3), 3)  # missing cells are 0 unless told
+    assert default.dtype == np.uint8 and (default[3:6, 0:3] == 0).all()
 
 
 def test_window_order_groups_each_window_in_raster_order():
     order = window_order(4, 6, 2)
+    assert order.dtype == np.int64  # as documented: int64 [gh*gw]
     expect = [r * 6 + q for wr in range(2) for wq in range(3) for r in (2 * wr, 2 * wr + 1) for q in (2 * wq, 2 * wq + 1)]
     assert order.tolist() == expect
     assert window_order(3, 3, 1).tolist() == list(range(9))

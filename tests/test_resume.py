@@ -277,3 +277,17 @@ def test_a_pipeline_not_started_holds_nothing_and_a_loaded_state_is_handed_back_
     assert again.state_dict() == state  # loaded, not iterated: the loaded state still stands
     assert again.state_dict(with_shards=False) == {k: v for k, v in state.items() if k != "shards"}
     assert "shards" not in pipe.state_dict(with_shards=False) and pipe.state_dict()["shards"] == state["shards"]
+
+
+def test_an_epoch_of_more_batches_than_the_data_gives_ends_with_every_flush_batch(tmp_path):
+    """epoch.batches is a cap without equalize: past the end of the data every batch the packer's
+    flush makes is still yielded; a cap that falls inside the flush stops exactly there."""
+    paths = make_shards(tmp_path, 2, 10)
+    big_buffer = {**SMALL, "packing": {**SMALL["packing"], "lookahead": 30}}  # most batches come from flush
+    natural = Pipeline(Recipe.from_dict(big_buffer), paths)
+    n = sum(1 for _ in natural)
+    assert n >= 3 and natural.ledger.emitted == 20
+    capped = Pipeline(Recipe.from_dict({**big_buffer, "epoch": {"batches": 100}}), paths)
+    assert sum(1 for _ in capped) == n and capped.ledger.emitted == 20
+    cut = Pipeline(Recipe.from_dict({**big_buffer, "epoch": {"batches": n - 1}}), paths)
+    assert sum(1 for _ in cut) == n - 1

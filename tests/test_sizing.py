@@ -456,10 +456,18 @@ def test_plan_size_of_a_region_plans_the_region():
     plan = plan_size(400, 300, cfg, region=(10, 20, 110, 70))
     assert plan.crop == (10, 20, 110, 70) and plan.source == (400, 300)
     assert (plan.grid_h, plan.grid_w) == (4, 8)  # the 2:1 grid in [28, 32] tokens (brute force: only 4 x 8)
+    assert plan.scale == max(64 / 50, 128 / 100) and plan.aspect_error == 0.0  # 4x8 patches of 16 px
+    flat = plan_size(400, 300, cfg, region=(10, 20, 110, 65))  # 100 x 45: still 4 x 8, taller than the region
+    assert (flat.grid_h, flat.grid_w) == (4, 8) and flat.scale == 64 / 45
+    assert abs(flat.aspect_error - abs(math.log((4 / 8) / (45 / 100)))) < 1e-12
     with pytest.raises(ValueError, match="not inside"):
         plan_size(400, 300, cfg, region=(10, 20, 310, 70))
     with pytest.raises(ValueError, match="not inside"):
         plan_size(400, 300, cfg, region=(10, 20, 10, 70))
+    for region in ((-1, 20, 110, 70), (10, -1, 110, 70), (10, 20, 110, 401)):
+        with pytest.raises(ValueError, match="not inside"):
+            plan_size(400, 300, cfg, region=region)
+    assert plan_size(400, 300, cfg, region=(0, 0, 300, 400)).crop == (0, 0, 300, 400)  # the whole image is a region
 
 
 def test_resize_to_plan_takes_a_plan_made_by_hand():
@@ -498,12 +506,25 @@ def test_draw_crop_keeps_a_share_of_the_area_with_the_image_aspect_jittered():
         tops.add(top)
     assert min(lefts) == 0 or len(lefts) > 50  # positions spread over the free room
     assert len(tops) > 50
+    shares = [(b[2] - b[0]) * (b[3] - b[1]) / (h * w) for b in (draw_crop(h, w, cfg, rng) for _ in range(300))]
+    assert min(shares) < 0.35 and max(shares) > 0.55  # the whole area range is drawn, not one end
+    factors = [((b[2] - b[0]) / (b[3] - b[1])) / (w / h) for b in (draw_crop(h, w, cfg, rng) for _ in range(300))]
+    assert min(factors) < 0.85 and max(factors) > 1.18  # and the whole jitter range
+    thin = CropConfig(mode="random", area=(0.5, 0.5), aspect_jitter=(1.0, 1.0))
+    left, top, right, bottom = draw_crop(100, 1, thin, rng)  # a 1-pixel-wide box is a box
+    assert (left, right, bottom - top) == (0, 1, 71)  # sqrt(0.5 * 100 / 0.01) = 70.7 rows
     assert draw_crop(h, w, CropConfig(mode="none"), rng) == (0, 0, w, h)
     # A 1-pixel-high image cannot give a box of half its area with a jittered aspect: whole image.
     tall = CropConfig(mode="random", area=(0.5, 0.5), aspect_jitter=(2.0, 2.0))
     assert draw_crop(1, 1, tall, rng) == (0, 0, 1, 1)
     exact = CropConfig(mode="random", area=(1.0, 1.0), aspect_jitter=(1.0, 1.0))
     assert draw_crop(h, w, exact, rng) == (0, 0, w, h)  # a box of the whole image fits exactly
+    # Boxes as high (or as wide) as the image fit too: 3/4 of the area at 3/4 (4/3) of its aspect is
+    # 300 x 300 (400 x 225) on this 400 x 300 image.
+    left, top, right, bottom = draw_crop(h, w, CropConfig(mode="random", area=(0.75, 0.75), aspect_jitter=(0.75, 0.75)), rng)
+    assert (top, bottom, right - left) == (0, 300, 300)
+    left, top, right, bottom = draw_crop(h, w, CropConfig(mode="random", area=(0.75, 0.75), aspect_jitter=(4 / 3, 4 / 3)), rng)
+    assert (left, right, bottom - top) == (0, 400, 225)
 
 
 # --- the SIZING_MODES and RESAMPLE_FILTERS tables --------------------------------------------
@@ -557,3 +578,78 @@ def test_every_resample_filter_in_the_table_is_reached_through_resize_to_plan():
     assert len(outs) == len(RESAMPLE_FILTERS)  # each name really picks its own filter
     with pytest.raises(ValueError, match=r"unknown resample filter 'cubic'.*sizing\.resample.*bicubic"):
         resize_to_plan(img, plan, resample="cubic")
+
+
+def test_best_grid_needs_a_window_of_at_least_one_token():
+    from patchloom.image.sizing import best_grid
+
+    for lo, hi in ((0, 5), (6, 5), (-1, 3)):
+        with pytest.raises(ValueError, match="1 <= lo <= hi"):
+            best_grid(1.0, lo, hi)
+    assert best_grid(1.0, 1, 1) == (1, 1) and best_grid(2.0, 2, 2) == (2, 1)
+
+
+def test_max_aspect_pad_of_a_mildly_tall_image_is_a_centred_tall_canvas():
+    """aspect_rule pad: an image 1.8 times taller than wide, over max_aspect 1.5, is planned on a grid
+    of the limit aspect (tall, not wide) and placed in its middle on the background."""
+    cfg = sizing(patch_size=16, max_tokens=96, mode="budget", max_aspect=1.5, aspect_rule="pad")
+    plan = plan_size(180, 100, cfg)
+    assert plan.grid_h > plan.grid_w and abs(plan.grid_h / plan.grid_w - 1.5) < 0.25
+    canvas_h, canvas_w = plan.grid_h * 16, plan.grid_w * 16
+    assert plan.content_h == canvas_h or plan.content_w == canvas_w  # touches two sides
+    assert (plan.pad_top, plan.pad_left) == ((canvas_h - plan.content_h) // 2, (canvas_w - plan.content_w) // 2)
+    wide = plan_size(100, 180, cfg)
+    assert (wide.grid_h, wide.grid_w) == (plan.grid_w, plan.grid_h)  # the same, turned
+
+
+def test_resize_to_plan_pads_with_white_and_gives_an_array_for_an_array():
+    """The default background is white (255, 255, 255); an HxWx3 array in gives the same pixels as
+    an array, PIL image in gives a PIL image."""
+    cfg = sizing(patch_size=8, max_tokens=16, mode="budget", max_aspect=1.5, aspect_rule="pad")
+    rng = np.random.default_rng(3)
+    arr = rng.integers(0, 256, (20, 60, 3), dtype=np.uint8)  # 3:1 wide, over the limit: padded
+    plan = plan_size(20, 60, cfg)
+    assert plan.pad_top > 0 or plan.pad_left > 0
+    from patchloom.image.sizing import reset_resize_path_counts, resize_path_counts
+
+    reset_resize_path_counts()
+    pil = resize_to_plan(Image.fromarray(arr), plan, resample="bilinear")
+    out = resize_to_plan(arr, plan, resample="bilinear")
+    assert resize_path_counts() == {"bilinear": 2}
+    assert isinstance(out, np.ndarray) and out.dtype == np.uint8 and out.shape == (plan.height, plan.width, 3)
+    np.testing.assert_array_equal(out, np.asarray(pil))
+    top, left = plan.pad_top, plan.pad_left
+    assert (out[:top] == 255).all() and (out[top + plan.content_h:] == 255).all()
+    assert (out[:, :left] == 255).all() and (out[:, left + plan.content_w:] == 255).all()
+    inside = out[top:top + plan.content_h, left:left + plan.content_w]
+    np.testing.assert_array_equal(inside, np.asarray(Image.fromarray(arr).resize(
+        (plan.content_w, plan.content_h), Image.Resampling.BILINEAR)))
+
+
+def test_area_resize_is_the_block_mean_at_whole_factors_and_averages_at_fractional_ones():
+    """sizing.resample area: "each output pixel averages the source area it covers". At a whole
+    shrink factor that is the plain block mean (numpy, rounded); at 1.5 the result must be closer to
+    an exact area average (Pillow's box filter, which weighs partly covered pixels) than a cubic
+    interpolation that does not average (OpenCV's INTER_CUBIC straight to the output size), and
+    OpenCV runs on one thread."""
+    cv2 = pytest.importorskip("cv2")
+    from patchloom.image.sizing import resize_area
+
+    rng = np.random.default_rng(7)
+    arr = rng.integers(0, 256, (64, 96, 3), dtype=np.uint8)
+    got = resize_area(arr, (24, 16), (0, 0, 96, 64))  # 4 x 4 blocks
+    means = arr.reshape(16, 4, 24, 4, 3).astype(np.float64).mean(axis=(1, 3))
+    assert got.shape == (16, 24, 3) and got.dtype == np.uint8
+    assert np.abs(got.astype(np.float64) - means).max() <= 0.5 + 1e-9  # the mean, rounded
+    assert cv2.getNumThreads() == 1
+
+    def err(x: np.ndarray, ref: np.ndarray) -> float:
+        return float(np.mean((x.astype(np.float64) - ref.astype(np.float64)) ** 2))
+
+    box = np.asarray(Image.fromarray(arr).resize((64, 43), Image.Resampling.BOX))  # 96 / 64 = 1.5
+    area = resize_area(arr, (64, 43), (0, 0, 96, 64))
+    cubic = cv2.resize(arr, (64, 43), interpolation=cv2.INTER_CUBIC)
+    assert err(area, box) < err(cubic, box)
+    shifted = resize_area(arr, (64, 43), (0.5, 0.5, 96.0, 64.0))  # a fractional box: the affine path
+    box_shifted = np.asarray(Image.fromarray(arr).resize((64, 43), Image.Resampling.BOX, box=(0.5, 0.5, 96.0, 64.0)))
+    assert err(shifted, box_shifted) < err(shifted, box) and err(shifted, box_shifted) < err(cubic, box)

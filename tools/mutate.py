@@ -52,7 +52,7 @@ class Target:
 #: module (under src/patchloom) -> its tests. Only these files run for that module's mutants.
 CORE: dict[str, Target] = {
     "image/sizing.py": Target(("tests/test_sizing.py", "tests/reference/test_sizing_reference.py",
-                               "tests/test_merge_grids.py")),
+                               "tests/test_fast_paths.py", "tests/test_merge_grids.py")),
     "image/patches.py": Target(("tests/test_patches.py", "tests/reference/test_patches_reference.py",
                                 "tests/test_merge_grids.py", "tests/test_chain.py")),
     "packing/assign.py": Target(("tests/test_packing.py", "tests/test_multi_image.py")),

@@ -190,3 +190,21 @@ def test_the_block_comparison_rejects_nearby_procedures(grid, target) -> None:
         other = np.array([documented_block_process(grid, rate, rng, **kw) for _ in range(BLOCK_IMAGES)])
         z_mean, z_reach = _same_distribution(counts, other, target)
         assert max(abs(z_mean), abs(z_reach)) > 4, (kw, z_mean, z_reach)
+
+
+@pytest.mark.parametrize("grid, target", [((14, 14), 75), ((7, 40), 120)])
+def test_block_positions_are_symmetric(grid, target) -> None:
+    """Every position is drawn uniformly (or uniformly among those covering a kept token), so the
+    procedure is symmetric under flipping the grid: per image, the tokens dropped in the first row
+    minus those in the last row have mean 0 (a one-sample z bound of 4 standard errors, from the
+    sample's own spread), and likewise the first and last columns."""
+    gh, gw = grid
+    rows, cols = [], []
+    for i in range(BLOCK_IMAGES):
+        keep, _ = drop_block(grid, target / (gh * gw), sample_rng(6, 0, f"img-{i:05d}", "drop"), min_area=16)
+        dropped = ~keep.reshape(gh, gw)
+        rows.append(int(dropped[0].sum()) - int(dropped[-1].sum()))
+        cols.append(int(dropped[:, 0].sum()) - int(dropped[:, -1].sum()))
+    for diffs in (np.array(rows), np.array(cols)):
+        z = diffs.mean() / (diffs.std(ddof=1) / math.sqrt(diffs.size))
+        assert abs(z) <= 4, z
