@@ -537,3 +537,45 @@ def test_content_noise_also_reaches_a_two_patch_image() -> None:
     kept_flat = sum(bool(drop_content(patches, 0.5, np.random.default_rng(i), noise=1.0)[0]) for i in range(200))
     assert 0 < kept_flat < 100
     assert not any(drop_content(patches, 0.5, np.random.default_rng(i), noise=0.0)[0] for i in range(20))
+
+
+def test_content_scores_are_the_variance_even_for_large_patches() -> None:
+    """content_scores is each patch's variance over its D values: checked against numpy's float64
+    variance on 16 x 16 x 3 = 768 values of full-range noise, where integer sums of squares times D
+    pass 2^31."""
+    from patchloom.image.dropping import content_scores
+
+    x = np.random.default_rng(3).integers(0, 256, (6, 768), dtype=np.uint8)
+    got = content_scores(x)
+    assert got.dtype == np.float64
+    np.testing.assert_allclose(got, x.astype(np.float64).var(axis=1), rtol=1e-12)
+    np.testing.assert_allclose(content_scores(x.astype(np.float32)), x.astype(np.float64).var(axis=1), rtol=1e-6)
+
+
+def test_negative_content_noise_is_refused() -> None:
+    from patchloom.image.dropping import drop_content
+
+    for noise in (-0.5, -1.5):
+        with pytest.raises(ValueError, match="noise must be >= 0"):
+            drop_content(noise_patches((2, 2)), 0.5, np.random.default_rng(0), noise=noise)
+
+
+def test_content_on_a_clip_decides_each_slice_from_its_own_pixels() -> None:
+    """A clip of two slices: slice 0 is flat on the left, slice 1 flat on the right; content mode
+    (noise 0) drops the flat half of each slice, in slice order, from the tokens' times and coords."""
+    left, _ = half_flat_image((4, 4), 4, split="left")
+    right = left.reshape(4, 4, -1)[:, ::-1].reshape(16, -1)  # the mirror image: flat on the right
+    patches = np.concatenate([left, right])
+    times = np.repeat(np.arange(2), 16)
+    coords = np.concatenate([grid_coords(4, 4)] * 2)
+    cfg = DropConfig(mode="content", rate=0.5, content={"noise": 0.0})
+    d = decide_drop(cfg, (4, 4), patches, np.random.default_rng(1), coords=coords, times=times, slices=2)
+    keep = d.keep.reshape(2, 4, 4)
+    assert not keep[0, :, :2].any() and keep[0, :, 2:].all()
+    assert keep[1, :, :2].all() and not keep[1, :, 2:].any()
+    order = np.random.default_rng(2).permutation(32)  # tokens in any order: coords and times place them
+    again = decide_drop(cfg, (4, 4), patches[order], np.random.default_rng(1), coords=coords[order],
+                        times=times[order], slices=2)
+    np.testing.assert_array_equal(again.keep, d.keep)
+    with pytest.raises(ValueError, match="needs the patches and their times"):
+        decide_drop(cfg, (4, 4), patches, np.random.default_rng(1), coords=coords, times=None, slices=2)

@@ -247,3 +247,19 @@ def test_a_certain_verdict_after_every_shard_is_not_called_early():
     with pytest.raises(SkipRatioError) as info:
         check_skip_guard(led, 0.1, final=False)
     assert "stopped after" not in str(info.value)
+
+
+def test_a_state_saved_before_texts_and_images_loads_with_their_counts():
+    """States from before texts_truncated and images_emitted existed: none truncated, and one image
+    per emitted sample."""
+    state = _busy_ledger("a", 4).state_dict()
+    old = {k: v for k, v in state.items() if k not in ("texts_truncated", "images_emitted")}
+    back = Ledger.from_state(old)
+    assert back.texts_truncated == 0 and back.images_emitted == back.emitted == 24
+
+
+def test_the_shard_share_in_the_message_is_failed_over_opened():
+    led = Ledger(shards_planned=1, shards_read=1)
+    led.add_shard_error(Skip("/d/only.tar", "", "read", "cut"))
+    with pytest.raises(SkipRatioError, match=r"1 of 1 shards failed \(100.0 %\)"):
+        check_skip_guard(led, 0.5, final=True)

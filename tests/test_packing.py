@@ -253,6 +253,13 @@ def test_packer_state_needs_images_read_from_shards():
     packer.push(ps(2, "loose"))
     with pytest.raises(ValueError, match="loose"):
         packer.state_dict()
+    for meta in ({"shard": "s.tar"}, {"index": 3}):  # both are needed
+        half = Packer(seq_len=10, rows=2, buffer=8)
+        item = ps(2, "half")
+        item.meta.update(meta)
+        half.push(item)
+        with pytest.raises(ValueError, match="half"):
+            half.state_dict()
 
 
 # ----------------------------------------------------------------------------- exact thresholds
@@ -357,8 +364,9 @@ def test_restore_without_waits_counts_them_as_zero_and_a_directly_set_buffer_cou
         item.meta.update(shard="s.tar", index=i)
     direct.pending = list(items)  # after two batches: waits count from now, for every item
     assert direct.waited() == [0, 0]
-    direct.pending = list(items)
-    assert direct.state_dict() == {"pending": [["s.tar", 0, 0], ["s.tar", 1, 0]]}
+    fresh = Packer(seq_len=10, rows=1, buffer=8)
+    fresh.pending = list(items)
+    assert fresh.state_dict() == {"pending": [["s.tar", 0, 0], ["s.tar", 1, 0]]}
 
 
 def test_a_saved_state_carries_each_pending_image_s_wait():
@@ -410,3 +418,10 @@ def test_temporal_tokens_carry_their_slice_and_segments_their_frames():
     assert b.times.tolist() == [[0, 0, 1, 1, 0, 0, 0, 0]] and b.frames.tolist() == [[2, 1, 0]]
     plain = pack([ps(2, "a"), ps(3, "b")], seq_len=8)
     assert plain.times is None and plain.frames is None
+
+
+def test_each_segment_keeps_its_text():
+    a, b, c = ps(3, "a"), ps(2, "b"), ps(4, "c")
+    a.text, c.text = "a red kite", "two boats"
+    batch = pack([a, b, c], seq_len=6, max_images_per_row=2)
+    assert batch.keys == [["a", "b"], ["c"]] and batch.texts == [["a red kite", ""], ["two boats"]]

@@ -460,6 +460,8 @@ def test_plan_size_of_a_region_plans_the_region():
     flat = plan_size(400, 300, cfg, region=(10, 20, 110, 65))  # 100 x 45: still 4 x 8, taller than the region
     assert (flat.grid_h, flat.grid_w) == (4, 8) and flat.scale == 64 / 45
     assert abs(flat.aspect_error - abs(math.log((4 / 8) / (45 / 100)))) < 1e-12
+    assert flat.to_dict() == {"grid": [4, 8], "tokens": 32, "crop": [10, 20, 110, 65], "content": [64, 128],
+                              "pad": [0, 0], "aspect_error": 0.105361, "scale": 1.422222, "budget": 32}
     with pytest.raises(ValueError, match="not inside"):
         plan_size(400, 300, cfg, region=(10, 20, 310, 70))
     with pytest.raises(ValueError, match="not inside"):
@@ -479,8 +481,11 @@ def test_resize_to_plan_takes_a_plan_made_by_hand():
     plan = SizePlan(grid_h=1, grid_w=2, patch_size=8, crop=(0, 0, 60, 40), content_h=8, content_w=16)
     assert plan.source == (0, 0)
     out = resize_to_plan(img, plan, resample="bilinear")
-    assert out.size == (16, 8)
+    assert out.size == (16, 8) and plan.budget == 0  # made by hand: no budget recorded
     np.testing.assert_array_equal(np.asarray(out), np.asarray(img.resize((16, 8), Image.Resampling.BILINEAR)))
+    cropped = SizePlan(grid_h=1, grid_w=2, patch_size=8, crop=(10, 5, 50, 25), content_h=8, content_w=16)
+    np.testing.assert_array_equal(np.asarray(resize_to_plan(img, cropped, resample="bilinear")), np.asarray(
+        img.resize((16, 8), Image.Resampling.BILINEAR, box=(10, 5, 50, 25))))  # the crop is Pillow's box
 
 
 def test_draw_crop_keeps_a_share_of_the_area_with_the_image_aspect_jittered():
@@ -513,6 +518,8 @@ def test_draw_crop_keeps_a_share_of_the_area_with_the_image_aspect_jittered():
     thin = CropConfig(mode="random", area=(0.5, 0.5), aspect_jitter=(1.0, 1.0))
     left, top, right, bottom = draw_crop(100, 1, thin, rng)  # a 1-pixel-wide box is a box
     assert (left, right, bottom - top) == (0, 1, 71)  # sqrt(0.5 * 100 / 0.01) = 70.7 rows
+    left, top, right, bottom = draw_crop(1, 100, thin, rng)  # and a 1-pixel-high one
+    assert (top, bottom, right - left) == (0, 1, 71)
     assert draw_crop(h, w, CropConfig(mode="none"), rng) == (0, 0, w, h)
     # A 1-pixel-high image cannot give a box of half its area with a jittered aspect: whole image.
     tall = CropConfig(mode="random", area=(0.5, 0.5), aspect_jitter=(2.0, 2.0))
