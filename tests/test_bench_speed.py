@@ -208,3 +208,12 @@ def test_dataloader_workers_hand_batches_over_through_reused_shared_slots(small:
         assert a["patches"].untyped_storage().nbytes() > a["patches"].nbytes  # through a slot
     off = list(DataLoader(PatchloomDataset(recipe, small, pool_slots=0), batch_size=None, num_workers=1))
     assert all(a["patches"].untyped_storage().nbytes() == a["patches"].nbytes for a in off)
+
+
+@pytest.mark.parametrize("name, stem", [("photos", "photos-{"), ("photos-small", "photos-small-{")])
+def test_each_photo_corpus_reads_its_own_shards(tmp_path, name, stem):
+    """The corpus table pairs each corpus with its own shard pattern (nothing is made here)."""
+    from patchloom.bench.corpus import load_corpus
+
+    corpus = load_corpus(name, data=tmp_path, make=False, progress=False)
+    assert corpus.shards.startswith(str(tmp_path / stem))

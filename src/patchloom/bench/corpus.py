@@ -38,6 +38,12 @@ class Corpus:
     made_in: Path | None = None  # the folder shards were just written to, if any
 
 
+#: Generated photo corpora: name -> (make the shards in a folder, the folder's shard pattern).
+_PHOTO_CORPORA = {
+    "photos": (make_photo_shards, photo_shard_pattern),
+    "photos-small": (make_small_photo_shards, small_photo_shard_pattern),
+}
+
 def load_corpus(corpus: str, *, shards: str | None = None, data: str | Path | None = None,
                 make: bool = True, progress: bool = True) -> Corpus:
     """The recipe and shards of `corpus` (`photos`, `photos-small`, `demo` or a recipe YAML path).
@@ -48,18 +54,13 @@ def load_corpus(corpus: str, *, shards: str | None = None, data: str | Path | No
     """
     folder = Path(data if data is not None else CORPORA.get(corpus, CORPORA["demo"]))
     made: Path | None = None
-    if corpus == "photos":
-        recipe = Recipe.from_dict(PHOTO_RECIPE, origin="built-in benchmark corpus `photos`")
+    if corpus in _PHOTO_CORPORA:
+        maker, pattern = _PHOTO_CORPORA[corpus]
+        recipe = Recipe.from_dict(PHOTO_RECIPE, origin=f"built-in benchmark corpus `{corpus}`")
         if shards is None:
             if make:
-                make_photo_shards(folder, progress=progress)
-            shards = photo_shard_pattern(folder)
-    elif corpus == "photos-small":
-        recipe = Recipe.from_dict(PHOTO_RECIPE, origin="built-in benchmark corpus `photos-small`")
-        if shards is None:
-            if make:
-                make_small_photo_shards(folder, progress=progress)
-            shards = small_photo_shard_pattern(folder)
+                maker(folder, progress=progress)
+            shards = pattern(folder)
     elif corpus == "demo":
         recipe = Recipe.from_dict(DEMO_RECIPE, origin="built-in demo recipe")
         shards = shards if shards is not None else demo_shard_pattern(folder, shards=4)
