@@ -111,6 +111,9 @@ def test_workers_bench_counts_every_image_at_each_worker_count(photos: str) -> N
     assert all(r["images"] == 12 and r["images_per_s"] > 0 for r in res["results"])
     assert res["results"][0]["ratio_to_0"] == 1.0
     assert "vs 0 workers" in format_workers(res)
+    longer = bench_workers(_recipe(), shards=photos, workers=(0,), epochs=2, epoch_images=30)  # 12 a pass
+    assert longer["shard_passes"] == 3 and longer["results"][0]["images"] == 36
+    assert "listed 3 times" in format_workers(longer)
     with pytest.raises(ValueError, match="epochs"):
         bench_workers(_recipe(), shards=photos, epochs=1)
 

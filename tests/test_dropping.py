@@ -15,6 +15,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from patchloom.image import dropping
 from patchloom.image.dropping import (
     DropDecision,
     apply_drop,
@@ -270,6 +271,48 @@ def test_block_property(gh, gw, rate, min_area, min_keep, seed) -> None:
     keep, rects = drop_block((gh, gw), rate, np.random.default_rng(seed), min_area=min_area, min_keep=min_keep)
     check_blocks((gh, gw), rate, keep, rects, min_area=min_area, min_keep=min_keep)
 
+
+
+def anchored_position_law(grid: tuple[int, int], h: int, w: int, *, off_by_one: bool = False) -> dict:
+    """P(top, left) of the first block when placement is anchored: a token drawn uniformly from the
+    (all kept) grid, then top and left each uniform over the positions whose block covers it,
+    enumerated by brute force. off_by_one leaves out the last such position (for the power check)."""
+    gh, gw = grid
+    law: dict[tuple[int, int], float] = {}
+    for r in range(gh):
+        for c in range(gw):
+            tops = [t for t in range(gh - h + 1) if t <= r < t + h]
+            lefts = [q for q in range(gw - w + 1) if q <= c < q + w]
+            if off_by_one:
+                tops, lefts = tops[:-1] or tops, lefts[:-1] or lefts
+            for t in tops:
+                for q in lefts:
+                    law[t, q] = law.get((t, q), 0.0) + 1 / (gh * gw * len(tops) * len(lefts))
+    return law
+
+
+@pytest.mark.parametrize("grid, side", [((4, 4), 2), ((5, 7), 2), ((6, 5), 3)])
+def test_anchored_block_position_is_uniform_over_blocks_covering_a_kept_token(monkeypatch, grid, side) -> None:
+    """With anchoring from the first attempt, one square block of the target's size is placed over a
+    uniformly drawn kept token; its (top, left) must follow the brute-force law (chi-square, p > 0.001),
+    and the same test must reject the law that never starts the block at the token's own row/column."""
+    from scipy import stats
+
+    monkeypatch.setattr(dropping, "BLOCK_ANCHOR_AFTER", 0)
+    area, n = side * side, grid[0] * grid[1]
+    images = 3_000
+    seen: dict[tuple[int, int], int] = {}
+    for i in range(images):
+        keep, rects = drop_block(grid, area / n, np.random.default_rng([7, i]), min_area=area, aspect=(1.0, 1.0))
+        assert len(rects) == 1 and rects[0][2:] == (side, side) and np.count_nonzero(~keep) == area
+        seen[rects[0][:2]] = seen.get(rects[0][:2], 0) + 1
+    law = anchored_position_law(grid, side, side)
+    assert set(seen) <= set(law)
+    cells = sorted(law)
+    observed = np.array([seen.get(k, 0) for k in cells])
+    assert stats.chisquare(observed, [law[k] * images for k in cells]).pvalue > 0.001
+    wrong = anchored_position_law(grid, side, side, off_by_one=True)
+    assert stats.chisquare(observed, [wrong.get(k, 1e-9) * images for k in cells]).pvalue < 1e-6
 
 # --- content --------------------------------------------------------------------------------
 

@@ -3,6 +3,9 @@
 `bench_workers` times `DataLoader(PatchloomDataset(...), num_workers=w)` for each w over the same
 shards, with persistent workers, and reports images/s of a warm epoch (after one untimed epoch
 that pays for starting the workers) and of the cold first epoch, plus each w's ratio to w = 0.
+An epoch is the shard list repeated until it holds at least `epoch_images` images: every epoch pays
+once for filling the workers' pipes and for the last worker's tail, which on a 300-image epoch
+(a third of a second) is a fifth of the time but on a real epoch is nothing.
 
 `bench_soak` streams a long synthetic stream (the recipe's shards listed over and over, so the
 stream is as long as asked without as much disk) through one Pipeline and samples the process's resident
@@ -39,9 +42,11 @@ def current_rss_mib() -> float | None:
 
 
 def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, workers: tuple[int, ...] = (0, 1, 2),
-                  epochs: int = 4, progress: bool = False, pool_slots: int | None = None) -> dict[str, Any]:
+                  epochs: int = 4, progress: bool = False, pool_slots: int | None = None,
+                  epoch_images: int = 0) -> dict[str, Any]:
     """Images/s through a torch DataLoader for each worker count (warm epochs and the cold first one).
 
+    `epoch_images`: repeat the shard list until an epoch holds at least this many images (0: once).
     `pool_slots`: the dataset's reusable shared-memory batch slots per worker (None: its default;
     0: a new shared segment per batch, torch's own way), to measure what the hand-over costs."""
     from torch.utils.data import DataLoader
@@ -51,6 +56,13 @@ def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, work
     if epochs < 2:
         raise ValueError(f"epochs must be >= 2 (one cold, at least one warm; got {epochs})")
     urls = expand_shards(shards if shards is not None else recipe.source.shards, allow_shell=False)
+    passes = 1
+    if epoch_images > 0:
+        per_pass = _count_samples(urls)
+        if per_pass == 0:
+            raise ValueError("the shards hold no samples to time")
+        passes = max(1, -(-epoch_images // per_pass))
+        urls = [u for _ in range(passes) for u in urls]
     rows = []
     for w in workers:
         ds = PatchloomDataset(recipe, urls, as_tensors=True,
@@ -80,13 +92,15 @@ def bench_workers(recipe: Recipe, *, shards: str | list[str] | None = None, work
     base = next((r["images_per_s"] for r in rows if r["workers"] == 0), None)
     for r in rows:
         r["ratio_to_0"] = r["images_per_s"] / base if base else float("nan")
-    return {"shards": len(urls), "epochs": epochs, "pool_slots": pool_slots, "results": rows}
+    return {"shards": len(urls), "shard_passes": passes, "epochs": epochs, "pool_slots": pool_slots, "results": rows}
 
 
 def format_workers(result: dict[str, Any]) -> str:
     slots = result.get("pool_slots")
     hand = "default batch slots" if slots is None else f"{slots} batch slots a worker"
-    lines = [f"DataLoader worker scaling ({result['shards']} shards, persistent workers, {hand}, "
+    passes = result.get("shard_passes", 1)
+    listed = f"{result['shards']} shards" + (f" = the corpus listed {passes} times" if passes > 1 else "")
+    lines = [f"DataLoader worker scaling ({listed}, persistent workers, {hand}, "
              f"median of {result['epochs'] - 1} warm epoch(s); cold = first epoch with worker start)",
              f"  {'workers':>7} {'images':>7} {'images/s':>9} {'cold img/s':>11} {'vs 0 workers':>13}"]
     for r in result["results"]:

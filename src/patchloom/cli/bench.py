@@ -115,6 +115,10 @@ def _workers_options(p: argparse.ArgumentParser) -> None:
                    help="time 0, 1, ..., N DataLoader workers (default: %(default)s)")
     p.add_argument("--epochs", type=_at_least(2), default=4,
                    help="epochs per worker count: the first (cold) and the rest (warm, median) (default: %(default)s)")
+    p.add_argument("--epoch-images", type=_at_least(0), default=2000, metavar="N",
+                   help="list the shards again until an epoch holds at least N images, so that filling the "
+                        "workers and the last one's tail, paid once an epoch, weigh as little as in training "
+                        "(0: each shard once; default: %(default)s)")
     p.add_argument("--pool-slots", type=_at_least(0), default=None, metavar="N",
                    help="reusable shared-memory batch slots per worker (0: a new shared segment per batch, "
                         "torch's own way; default: the dataset's)")
@@ -124,7 +128,7 @@ def _workers(c: Corpus, args: argparse.Namespace) -> tuple[dict[str, Any], str]:
     from ..bench.scale import bench_workers, format_workers
 
     result = bench_workers(c.recipe, shards=c.shards, workers=tuple(range(args.max_workers + 1)), epochs=args.epochs,
-                           progress=not args.no_progress, pool_slots=args.pool_slots)
+                           progress=not args.no_progress, pool_slots=args.pool_slots, epoch_images=args.epoch_images)
     return result, format_workers(result)
 
 
