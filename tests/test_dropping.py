@@ -116,6 +116,28 @@ def test_random_rounds_half_up_and_refuses_bad_rates() -> None:
             drop_random(10, bad, np.random.default_rng(0))
 
 
+#: Each mode's function with its other arguments fixed; keyword arguments go through.
+MODE_CALLS = {
+    "random": lambda rng, **kw: drop_random(16, 1.0, rng, **kw),
+    "block": lambda rng, **kw: drop_block((4, 4), 1.0, rng, min_area=2, **kw)[0],
+    "grid": lambda rng, **kw: drop_grid((4, 4), 1.0, rng, **kw),
+    "stripes": lambda rng, **kw: drop_stripes((4, 4), 1.0, rng, **kw),
+    "content": lambda rng, **kw: drop_content(np.arange(16 * 3).reshape(16, 3), 1.0, rng, **kw),
+}
+
+
+@pytest.mark.parametrize("mode", sorted(MODE_CALLS))
+def test_every_mode_refuses_a_negative_min_keep_and_defaults_to_zero(mode) -> None:
+    """A negative floor is a caller's mistake and is said so; left out, min_keep is 0."""
+    call = MODE_CALLS[mode]
+    with pytest.raises(ValueError, match="min_keep must be >= 0"):
+        call(np.random.default_rng(0), min_keep=-1)
+    default = call(np.random.default_rng(3))
+    assert np.array_equal(default, call(np.random.default_rng(3), min_keep=0))
+    if mode in ("random", "content"):  # exact counts: rate 1 with no floor drops every token
+        assert not default.any() and call(np.random.default_rng(3), min_keep=1).sum() == 1
+
+
 # --- grid -----------------------------------------------------------------------------------
 
 

@@ -111,7 +111,10 @@ def drop_count(rate: float, n: int) -> int:
 
 
 def _floor_kept(min_keep: int, n: int) -> int:
-    return min(max(int(min_keep), 0), int(n))
+    """The tokens that must stay: min(min_keep, n); a negative min_keep is refused, not read as 0."""
+    if min_keep < 0:
+        raise ValueError(f"min_keep must be >= 0 (got {min_keep})")
+    return min(int(min_keep), int(n))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -207,8 +210,8 @@ def drop_block(grid: tuple[int, int], rate: float, rng: np.random.Generator, *, 
     keep = np.ones((gh, gw), dtype=bool)
     rects: list[Rect] = []
     fit = largest_block((gh, gw), (lo, hi))
-    if target == 0 or fit == 0:
-        return keep.reshape(-1), rects
+    if fit == 0:  # no block fits the grid within `aspect` (a target of 0 never enters the loop)
+        return keep.ravel(), rects
     a_min = min(int(min_area), fit)
     log_lo, log_hi = math.log(lo), math.log(hi)
     log_h2, log_w2 = 2 * math.log(gh + 0.5), 2 * math.log(gw + 0.5)  # round() keeps h <= gh here
@@ -244,7 +247,7 @@ def drop_block(grid: tuple[int, int], rate: float, rng: np.random.Generator, *, 
         dropped += new
         rects.append((top, left, h, w))
         fails = 0
-    return keep.reshape(-1), rects
+    return keep.ravel(), rects
 
 
 def grid_stride(grid: tuple[int, int], rate: float) -> int:
@@ -282,7 +285,7 @@ def drop_grid(grid: tuple[int, int], rate: float | None, rng: np.random.Generato
         rows[r0::k] = True
         cols[c0::k] = True
         if k == 1 or np.count_nonzero(rows) * np.count_nonzero(cols) >= floor:
-            return np.outer(rows, cols).reshape(-1)
+            return np.outer(rows, cols).ravel()
         k -= 1
 
 
@@ -315,7 +318,7 @@ def drop_stripes(grid: tuple[int, int], rate: float, rng: np.random.Generator, *
     rows, cols = np.ones(gh, dtype=bool), np.ones(gw, dtype=bool)
     rows[row_order[: gh - rows_left]] = False
     cols[col_order[: gw - cols_left]] = False
-    return np.outer(rows, cols).reshape(-1)
+    return np.outer(rows, cols).ravel()
 
 
 def content_scores(patches: np.ndarray) -> np.ndarray:
@@ -347,7 +350,7 @@ def drop_content(patches: np.ndarray, rate: float, rng: np.random.Generator, *, 
     k = min(drop_count(rate, n), n - _floor_kept(min_keep, n))
     jitter = rng.standard_normal(n)
     ties = rng.random(n)
-    if noise > 0 and n > 1:
+    if noise and n > 1:  # noise >= 0 was checked above
         scores = scores + (noise * float(scores.std())) * jitter
     keep = np.ones(n, dtype=bool)
     keep[np.lexsort((ties, scores))[:k]] = False
@@ -446,7 +449,7 @@ def _raster(patches: np.ndarray | None, coords: np.ndarray | None, grid: tuple[i
     c = np.asarray(coords)
     if c.shape != (n, 2) or c.min(initial=0) < 0 or (c[:, 0] >= gh).any() or (c[:, 1] >= gw).any():
         raise ValueError(f"coords must be [N, 2] places in the {gh}x{gw} grid (got shape {c.shape})")
-    flat = c[:, 0].astype(np.int64) * gw + c[:, 1]
+    flat = c[:, 0].astype(np.intp) * gw + c[:, 1]
     if np.bincount(flat, minlength=n).max(initial=0) > 1:
         raise ValueError("coords must name every grid place once")
     out = np.empty_like(x)
@@ -536,7 +539,7 @@ def window_drop(mode: DropMode, cfg: DropConfig, grid: Grid, rate: float, rng: n
         return np.ascontiguousarray(x.reshape(wh, m, ww, m, -1).transpose(0, 2, 1, 3, 4).reshape(wh * ww, -1))
 
     keep_w, blocks_w = mode((wh, ww), rate, wcfg, rng, window_values)
-    keep = np.repeat(np.repeat(np.asarray(keep_w, bool).reshape(wh, ww), m, axis=0), m, axis=1).reshape(-1)
+    keep = np.repeat(np.repeat(np.asarray(keep_w, bool).reshape(wh, ww), m, axis=0), m, axis=1).ravel()
     blocks = tuple((t * m, left * m, h * m, w * m) for t, left, h, w in blocks_w)
     return DropDecision(keep, rate, blocks, cfg.mode)
 
@@ -561,9 +564,9 @@ def apply_drop(ps: PatchSet, decision: DropDecision, how: str) -> PatchSet:
             f"PatchSet {ps.key!r}: drop decision has {keep.size} places, grid {gh}x{gw}"
             + (f" x {ps.frames} slices" if ps.times is not None else "") + f" has {places}"
         )
-    flat = ps.coords[:, 0].astype(np.int64) * gw + ps.coords[:, 1]
+    flat = ps.coords[:, 0].astype(np.intp) * gw + ps.coords[:, 1]
     if ps.times is not None:
-        flat = flat + ps.times.astype(np.int64) * (gh * gw)
+        flat = flat + ps.times.astype(np.intp) * (gh * gw)
     token_keep = keep[flat]
     meta = {**ps.meta, "drop": {"mode": decision.mode, "rate": float(decision.rate),
                                 "kept": int(np.count_nonzero(token_keep)), "total": ps.num_tokens}}
