@@ -252,6 +252,7 @@ def test_check_resume_catches_a_resume_that_forgets_the_saved_ledger(tmp_path):
     (1, "older patchloom"), (STATE_VERSION - 1, "older patchloom"), (0, "unknown state version 0"),
     (-1, "unknown state version -1"), (STATE_VERSION + 1, f"unknown state version {STATE_VERSION + 1}"),
     ("3", "unknown state version '3'"), (None, "unknown state version None"),
+    (True, "unknown state version True"), (float(STATE_VERSION), f"unknown state version {float(STATE_VERSION)}"),
 ])
 def test_state_versions_at_the_edges_get_the_right_message(version, words):
     """Only 1 .. STATE_VERSION - 1 are states of an older patchloom; anything else is not ours."""

@@ -61,9 +61,10 @@ class StateError(PatchloomError, ValueError):
 
 def check_state_version(version: Any) -> None:
     """Refuse a resume state of another version, saying whether an older patchloom wrote it."""
-    if version == STATE_VERSION:
+    exact_int = type(version) is int  # True, 3.0 or "3" are not versions a state was saved with
+    if exact_int and version == STATE_VERSION:
         return
-    if isinstance(version, int) and 0 < version < STATE_VERSION:
+    if exact_int and 0 < version < STATE_VERSION:
         raise StateError(
             f"this resume state was saved by an older patchloom (state version {version}; this one reads "
             f"version {STATE_VERSION}) and cannot be resumed: start the epoch afresh, or resume with the "

@@ -40,8 +40,8 @@ def cmd_pack(args: argparse.Namespace) -> int:
     t = man["totals"]
     led = man["ledger"]
     failed = _failed_inputs(led, [i["path"] for i in man["inputs"]])
-    for line in failed.values():
-        print(f"patchloom: warning: input shard {line}; its samples are not in the pack", file=sys.stderr)
+    # Each failed shard was already named once, as it failed (the pipeline's warning, also from
+    # worker processes); here only the count, so that no shard is reported twice.
     if failed:
         print(f"patchloom: warning: {len(failed)} of {len(man['inputs'])} input shards failed (under "
               "source.max_skip_ratio, so the pack went on); manifest.json lists them under ledger.shard_errors",
