@@ -469,3 +469,38 @@ def test_shard_identity_and_changes(tmp_path):
     b.unlink()
     msg = describe_identity_change(saved, [shard_identity(str(a)), shard_identity(str(b))])
     assert "can no longer be read" in msg
+
+
+# ----------------------------------------------------------------------------- members of no sample
+
+
+def _tar_with_strays(path):
+    """Two samples, plus a directory, a member without an extension, a symlink and a hard link."""
+    with tarfile.open(path, "w", format=tarfile.GNU_FORMAT) as tar:
+        def add(name, data=b"", kind=tarfile.REGTYPE, link=""):
+            info = tarfile.TarInfo(name)
+            info.type, info.linkname, info.size = kind, link, len(data)
+            tar.addfile(info, io.BytesIO(data) if data else None)
+        add("photos/", kind=tarfile.DIRTYPE)
+        add("photos/a.jpg", b"x" * 10)
+        add("photos/a.cls", b"1")
+        add("photos/b_without_ext", b"y" * 10)
+        add("photos/c.jpg", kind=tarfile.SYMTYPE, link="a.jpg")
+        add("photos/d.jpg", kind=tarfile.LNKTYPE, link="photos/a.jpg")
+        add("photos/e.jpg", b"z" * 10)
+    return str(path)
+
+
+def test_members_of_no_sample_are_named_once_per_shard(tmp_path, caplog):
+    url = _tar_with_strays(tmp_path / "s.tar")
+    with caplog.at_level("WARNING", logger="patchloom"):
+        recs, err = read_all(url)
+    assert err is None and [r.key for r in recs] == ["photos/a", "photos/e"]
+    said = [r.getMessage() for r in caplog.records]
+    assert len(said) == 1 and "3 member(s) belong to no sample" in said[0], said
+    assert all(repr(n) in said[0] for n in ("photos/b_without_ext", "photos/c.jpg", "photos/d.jpg"))
+    assert "photos/'" not in said[0]  # a directory is no stray
+    caplog.clear()
+    with caplog.at_level("WARNING", logger="patchloom"):  # the other readers of a split shard stay quiet
+        assert [r.key for r in read_shard(ShardTask(url, part=1, parts=2))] == ["photos/e"]
+    assert not caplog.records

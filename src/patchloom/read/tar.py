@@ -9,6 +9,7 @@ allows (streamed past, never loaded). Every failure of a shard is a ShardError n
 
 from __future__ import annotations
 
+import logging
 import os
 import re
 import select
@@ -19,6 +20,8 @@ from collections.abc import Iterator
 from dataclasses import dataclass, field
 
 from .specs import SHELL_PREFIXES, ShardTask, SourceError
+
+log = logging.getLogger("patchloom")
 
 
 class ShardError(SourceError):
@@ -254,6 +257,7 @@ class _Member:
     name: str  # escaped (valid UTF-8)
     size: int
     regular: bool  # a regular file (others: directories, links, devices, unknown types)
+    directory: bool = False
 
 
 class _TarReader:
@@ -429,7 +433,8 @@ class _TarReader:
             self._left = (size + TAR_BLOCK - 1) // TAR_BLOCK * TAR_BLOCK if has_data else 0
             self.count += 1
             self.last = name
-            return _Member(name=name, size=size if has_data else 0, regular=kind in _REGULAR_TYPES)
+            return _Member(name=name, size=size if has_data else 0, regular=kind in _REGULAR_TYPES,
+                           directory=kind == b"5")
 
     def _meta(self, size: int, at: int, what: str) -> bytes:
         if size > _META_LIMIT:
@@ -542,6 +547,7 @@ def read_shard(
         reader = _TarReader(raw, url)
         sample: _Sample | None = None
         index = -1
+        unread: list[str] = []
         while True:
             try:
                 member = reader.next()
@@ -551,12 +557,13 @@ def read_shard(
                 raise
             if member is None:
                 break
-            if not member.regular or _META_NAME.match(member.name) or (
+            if member.directory or _META_NAME.match(member.name) or (
                     "/" not in member.name and member.name.startswith("__") and member.name.endswith("__")):
                 continue
             key, ext = split_member_name(member.name)
-            if key is None or ext is None:
-                continue  # no extension: not part of any sample (as webdataset)
+            if not member.regular or key is None or ext is None:
+                unread.append(member.name)  # a link or device, or no extension: part of no sample (as webdataset)
+                continue
             if sample is None or key != sample.key:
                 if sample is not None and sample.keep:
                     yield sample.record(url)
@@ -587,6 +594,10 @@ def read_shard(
         if sample is not None and sample.keep:
             yield sample.record(url)
         reader.finish()
+        if unread and task.part == 0 and start == 0 and wanted is None:  # one reader of the shard says it
+            log.warning("shard %s: %d member(s) belong to no sample and were not read: %s; a sample's members are "
+                        "regular files named KEY.EXT (links are not followed)", url, len(unread),
+                        ", ".join(repr(n) for n in unread[:5]) + (", ..." if len(unread) > 5 else ""))
     finally:
         try:
             raw.close()
