@@ -184,9 +184,14 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
     try:
         recipe = Recipe.from_dict(man["recipe"], origin=str(out / MANIFEST))
         if recipe.fingerprint() != man["fingerprint"]:  # the batches below decide; this alone is no failure
+            packed_with = str((man.get("libraries") or {}).get("patchloom", "an unrecorded version"))
+            running = library_versions().get("patchloom", "unknown")
+            why = ("the same patchloom packed it, so the manifest's recipe was edited after packing"
+                   if packed_with == running else
+                   f"the manifest's recipe was edited after packing, or the recipe schema or defaults of "
+                   f"patchloom {running} differ from those of {packed_with}, which packed it")
             res.notes.append(f"the recorded recipe now resolves to fingerprint {recipe.fingerprint()[:16]}… "
-                             f"(recorded {man['fingerprint'][:16]}…): this patchloom's recipe schema or "
-                             "defaults differ from the packing one; batches compared anyway")
+                             f"(recorded {man['fingerprint'][:16]}…): {why}; batches compared anyway")
     except RecipeError as exc:
         problems.append(f"the manifest's recipe no longer validates: {exc}")
 
