@@ -394,3 +394,26 @@ def test_a_folder_packed_under_the_old_key_names_still_reads_and_verifies(packed
     assert PackedReader(old).recipe.packing.lookahead == packing["buffer"]
     assert len(list(read_packed(old, shuffle=False))) == len(list(read_packed(packed1, shuffle=False)))
     assert verify_dir(old, progress=False).ok
+
+
+def test_verify_follows_inputs_that_moved_when_shards_names_their_new_place(recipe, tmp_path):
+    src = tmp_path / "old"
+    make_demo_shards(src, shards=2, per_shard=12, progress=False)
+    out = tmp_path / "packed"
+    pack_to_dir(recipe, out, shards=str(src / "demo-*.tar"), progress=False, max_batches_per_shard=PER_SHARD)
+    new = tmp_path / "new"
+    src.rename(new)
+    res = verify_dir(out, progress=False)
+    assert not res.ok and "is missing" in res.messages[0] and "pass --shards with their new place" in res.messages[0]
+    res = verify_dir(out, progress=False, shards=str(new / "demo-*.tar"))
+    assert res.ok, res.messages
+    assert any("read where --shards names them now" in n for n in res.notes)
+    # the pairing is by order and every moved input is hashed: a changed copy is caught, named by its new path
+    _rewrite_member(new / "demo-000001.tar", next(n for n in tarfile.open(new / "demo-000001.tar").getnames()
+                                                   if n.endswith(".cls")), lambda b: b"7")
+    res = verify_dir(out, progress=False, shards=str(new / "demo-*.tar"))
+    assert not res.ok and res.messages[0].startswith("input shard demo-000001.tar changed since packing")
+    assert str(new) in res.messages[0]
+    # a spec that names fewer inputs than were recorded pairs nothing: the paths must then match
+    res = verify_dir(out, progress=False, shards=str(new / "demo-000000.tar"))
+    assert not res.ok and any("was not an input when packed" in m for m in res.messages)

@@ -105,6 +105,22 @@ def _confirm_inputs(recorded: list[str], spec: str | list[str] | None, *, allow_
     return confirmed, problems
 
 
+def _moved_inputs(recorded: list[str], shards: str | list[str] | None, *, allow_shell: bool,
+                  image_keys: list[str] | None) -> dict[str, str]:
+    """Recorded input -> where the user's `--shards` names it now, when the inputs moved as a whole: the
+    spec yields as many inputs as were recorded and none of the recorded paths; they pair up in order
+    (the caller hashes each against its record). Empty otherwise (then paths must match as recorded)."""
+    if shards is None:
+        return {}
+    try:
+        now = input_paths(shards, allow_shell=allow_shell, image_keys=image_keys)
+    except SourceError:
+        return {}
+    if len(now) != len(recorded) or len(set(now)) != len(now) or set(now) & set(recorded):
+        return {}
+    return dict(zip(recorded, now))
+
+
 def _recorded_image_keys(recipe: dict[str, Any]) -> list[str] | None:
     """The recorded recipe's source.image_keys (which folders are image folders), if it is a list of names."""
     source = recipe.get("source")
@@ -147,17 +163,24 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
         spec = source.get("shards") if isinstance(source, dict) else None
         spec = spec if isinstance(spec, str) or (isinstance(spec, list) and all(isinstance(s, str) for s in spec)) \
             else None
-    confirmed, spec_problems = _confirm_inputs(recorded, spec, allow_shell=allow_shell,
-                                               image_keys=_recorded_image_keys(man["recipe"]))
+    image_keys = _recorded_image_keys(man["recipe"])
+    moved = _moved_inputs(recorded, shards, allow_shell=allow_shell, image_keys=image_keys)
+    if moved:
+        confirmed, spec_problems = set(recorded), []
+        res.notes.append(f"the {len(moved)} inputs are read where --shards names them now, paired with the recorded "
+                         "inputs in order; each must hash as recorded")
+    else:
+        confirmed, spec_problems = _confirm_inputs(recorded, spec, allow_shell=allow_shell, image_keys=image_keys)
     for inp in man["inputs"]:
-        url = inp["path"]
+        url = moved.get(inp["path"], inp["path"])
         name = _tail(url)
-        if url not in confirmed:
+        if url not in confirmed and inp["path"] not in moved:
             if url.startswith(SHELL_PREFIXES) and not allow_shell:
                 problems.append(f"input shard {name} runs a shell command ({url}); pass --allow-shell to re-hash "
                                 "it (only for a folder you packed yourself)")
             elif is_local(url) and not os.path.lexists(url.removeprefix("file:")):
-                problems.append(f"input shard {name} is missing ({url})")
+                problems.append(f"input shard {name} is missing ({url}); if the inputs moved, pass --shards with "
+                                "their new place")
             else:
                 problems.append(f"input shard {name} is not among the inputs the shard spec gives now, so it was "
                                 f"not read ({url}); pass --shards SPEC to name the inputs yourself")
@@ -206,7 +229,7 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
     rerun: list[dict[str, Any]] | None = None
     if inputs_ok and recipe is not None:
         workers = man["workers"]
-        jobs = [{"recipe": man["recipe"], "fingerprint": None, "shards": [i["path"] for i in man["inputs"]],
+        jobs = [{"recipe": man["recipe"], "fingerprint": None, "shards": [moved.get(u, u) for u in recorded],
                  "epoch": int(man["epoch"]), "worker": w, "workers": workers, "allow_shell": allow_shell}
                 for w in range(workers)]
         try:
