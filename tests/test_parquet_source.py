@@ -335,3 +335,66 @@ def test_equalized_epoch_tops_up_from_row_groups(two_files):
         repeated += pipe.ledger.repeated
     assert repeated > 0
     check_resume(lambda: Pipeline(recipe, shards=paths, rank=4, world_size=5))
+
+
+# --- several images per row (source.images_per_sample: all) ----------------------------------------------
+
+
+def _groups_by_key(batches) -> dict[str, int]:
+    """key -> how many images of that sample were packed (all of one sample sit in one row)."""
+    out: Counter = Counter()
+    for b in batches:
+        for r, keys in enumerate(b.keys):
+            groups = b.groups[r].tolist()
+            for j, key in enumerate(keys):
+                out[key] += 1
+                if j:  # a sample's images are adjacent and share a group number
+                    assert (groups[j] == groups[j - 1]) == (keys[j - 1] == key)
+    return dict(out)
+
+
+@pytest.mark.filterwarnings("ignore:.*has no column 'label'")  # nested.parquet has none, on purpose
+def test_a_list_column_and_several_image_columns_are_one_sample_each(tmp_path):
+    """A row's images: every element of a list column (binary or struct cells) and every other image
+    column, in image_keys order; each comes out once, in one row, as one group."""
+    rng = np.random.default_rng(12)
+    views = [[_png(rng) for _ in range(k)] for k in (3, 1, 2, 4, 2, 1)]
+    extra = [_png(rng) if i % 2 == 0 else None for i in range(6)]  # a second column, null in odd rows
+    struct = pa.struct([("bytes", pa.binary()), ("path", pa.string())])
+    lists, nested = tmp_path / "lists.parquet", tmp_path / "nested.parquet"
+    pq.write_table(pa.table({"views": pa.array(views, pa.list_(pa.binary())), "cover": pa.array(extra, pa.binary()),
+                             "label": pa.array(range(6), pa.int64())}), lists, row_group_size=4)
+    pq.write_table(pa.table({"views": pa.array([[{"bytes": b, "path": "x.png"} for b in v] for v in views],
+                                               pa.list_(struct))}), nested)
+    data = {**BASE, "source": {"image_keys": ["views", "cover"], "label_key": "label", "images_per_sample": "all",
+                               "shuffle_buffer": 4},
+            "packing": {"seq_len": 128, "rows": 2, "max_images_per_row": 8, "lookahead": 4}}
+    recipe = Recipe.from_dict(data)
+    recs = {r.key: r for r in read_task(ShardTask(str(lists)),
+                                          fields=Fields(("views", "cover"), "label", None, all_images=True))}
+    assert list(recs["lists/0"].members) == ["0.views", "1.views", "2.views", "3.cover", "label"]
+    assert [recs["lists/0"].members[f"{i}.views"] for i in range(3)] == views[0]
+    assert recs["lists/0"].members["3.cover"] == extra[0] and "1.cover" not in recs["lists/1"].members
+    got = _groups_by_key(Pipeline(recipe, shards=[str(lists), str(nested)]))
+    want = {f"lists/{i}": len(v) + (extra[i] is not None) for i, v in enumerate(views)}
+    want.update({f"nested/{i}": len(v) for i, v in enumerate(views)})
+    assert got == want
+
+
+def test_a_list_column_without_all_says_what_to_set_and_a_null_element_skips_its_sample(tmp_path):
+    rng = np.random.default_rng(13)
+    path = tmp_path / "views.parquet"
+    views = [[_png(rng), _png(rng)], [_png(rng), None], [], [_png(rng)]]
+    pq.write_table(pa.table({"views": pa.array(views, pa.list_(pa.binary()))}), path)
+    one = Recipe.from_dict({**BASE, "source": {"image_keys": ["views"], "label_key": None, "text_key": None,
+                                               "on_error": "raise"}})
+    with pytest.raises(ShardError, match="holds a list of images.*images_per_sample to all"):
+        list(Pipeline(one, shards=str(path)))
+    all_ = Recipe.from_dict({**BASE, "source": {"image_keys": ["views"], "label_key": None, "text_key": None,
+                                                "images_per_sample": "all", "max_skip_ratio": None}})
+    pipe = Pipeline(all_, shards=str(path))
+    assert _groups_by_key(pipe) == {"views/0": 2, "views/3": 1}
+    skips = {s.key: s.reason for s in pipe.ledger.skipped}
+    assert set(skips) == {"views/1", "views/2"}
+    assert "views[1]" in skips["views/1"] and "null" in skips["views/1"]
+    assert "holds no image" in skips["views/2"]

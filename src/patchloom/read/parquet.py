@@ -2,7 +2,10 @@
 row index in the file, members), so the rest of the pipeline does not know the difference.
 
 Members are named by column: the image column (the first of `source.image_keys` the file has;
-encoded bytes, binary or a struct with a `bytes` field) under its own name, the label and text
+encoded bytes, binary or a struct with a `bytes` field) under its own name, or, with
+`source.images_per_sample: all`, every image column the file has, in `image_keys` order, each a
+single image or a list of them, as members `0.<column>`, `1.<column>`, ... numbered across the
+columns (the order a tar sample's `0.jpg`, `1.jpg` gives); the label and text
 columns (`source.label_key`, `source.text_key`, the part before any `:field`) as UTF-8 text (JSON
 for nested values). The key is the `__key__` column when there is one, else `<file stem>/<row>`.
 
@@ -88,6 +91,7 @@ class _Plan:
     label: str | None
     text: str | None
     key: str | None
+    images: tuple[str, ...] = ()  # with Fields.all_images: every image column, in image_keys order
 
 
 def _is_binary(pa: Any, typ: Any) -> bool:
@@ -99,6 +103,12 @@ def _is_binary(pa: Any, typ: Any) -> bool:
 def _is_image_struct(pa: Any, typ: Any) -> bool:
     return bool(pa.types.is_struct(typ) and typ.get_field_index("bytes") >= 0
                 and _is_binary(pa, typ.field(typ.get_field_index("bytes")).type))
+
+
+def _is_image_list(pa: Any, typ: Any) -> bool:
+    t = pa.types
+    return bool((t.is_list(typ) or t.is_large_list(typ) or t.is_fixed_size_list(typ))
+                and (_is_binary(pa, typ.value_type) or _is_image_struct(pa, typ.value_type)))
 
 
 def _plan(schema: Any, fields: Fields | None, url: str) -> _Plan:
@@ -113,14 +123,24 @@ def _plan(schema: Any, fields: Fields | None, url: str) -> _Plan:
         shown = ", ".join(names[:20]) + (f" and {len(names) - 20} more" if len(names) > 20 else "")
         raise shard_error(url, f"has none of the image columns {', '.join(fields.image_keys)} (source.image_keys); "
                                f"its columns are {shown}: set source.image_keys to the image column's name")
-    typ = schema.field(image).type
-    if not (_is_binary(pa, typ) or _is_image_struct(pa, typ)):
-        raise shard_error(url, f"column {image!r} is {typ}, not encoded image bytes (binary, or a struct with a "
-                               "binary `bytes` field): set source.image_keys to the column holding the image files")
+    images = tuple(k for k in fields.image_keys if k in names) if fields.all_images else (image,)
+    for column in images:
+        typ = schema.field(column).type
+        if _is_binary(pa, typ) or _is_image_struct(pa, typ):
+            continue
+        if _is_image_list(pa, typ):
+            if fields.all_images:
+                continue
+            raise shard_error(url, f"column {column!r} holds a list of images ({typ}): set source.images_per_sample "
+                                   "to all to read them all as one sample")
+        raise shard_error(url, f"column {column!r} is {typ}, not encoded image bytes (binary, a struct with a binary "
+                               "`bytes` field, or with images_per_sample all a list of these): set "
+                               "source.image_keys to the column holding the image files")
     label = _named_column(fields.label_key, names, url, "label_key", "label")
     text = _named_column(fields.text_key, names, url, "text_key", "text")
-    columns = list(dict.fromkeys(c for c in (image, label, text, key) if c is not None))
-    return _Plan(columns=columns, image=image, label=label, text=text, key=key)
+    columns = list(dict.fromkeys(c for c in (*images, label, text, key) if c is not None))
+    return _Plan(columns=columns, image=image, label=label, text=text, key=key,
+                 images=images if fields.all_images else ())
 
 
 def _named_column(member_key: str | None, names: list[str], url: str, setting: str, what: str) -> str | None:
@@ -179,6 +199,33 @@ def _image_cell(col: Any, j: int, column: str) -> tuple[Any, str | None]:
     return scalar, None
 
 
+def _all_image_cells(batch: Any, j: int, columns: tuple[str, ...]) -> tuple[list[tuple[str, Any]], str | None]:
+    """([(member name `n.<column>`, binary scalar)] of every image in row j's image columns, numbered
+    across them in order), or the reason the row has none or holds a null image (then the sample is
+    skipped: an image missing from a group is not dropped silently)."""
+    pa = require("pyarrow")
+    found: list[tuple[str, Any]] = []
+    for column in columns:
+        col = batch.column(column)
+        if not col[j].is_valid:
+            continue  # a null cell: this column holds no image for the row
+        if _is_image_list(pa, col.type):
+            cells = col[j].values  # the row's list as an array of binaries or image structs
+            for e in range(len(cells)):
+                data, reason = _image_cell(cells, e, f"{column}[{e}]")
+                if data is None:
+                    return [], reason
+                found.append((f"{len(found)}.{column}", data))
+        else:
+            data, reason = _image_cell(col, j, column)
+            if data is None:
+                return [], reason
+            found.append((f"{len(found)}.{column}", data))
+    if not found:
+        return [], f"the row holds no image (columns {', '.join(map(repr, columns))} are null or empty)"
+    return found, None
+
+
 def _row(batch: Any, j: int, i: int, g: int, url: str, stem: str, plan: _Plan,
          max_sample_bytes: int | None) -> Record:
     """Row j of a batch (row i of the file, in row group g) as a Record; a null image or a row over
@@ -204,15 +251,21 @@ def _row(batch: Any, j: int, i: int, g: int, url: str, stem: str, plan: _Plan,
             if value is not None:
                 members[name] = value
         return Record(key, url, i, members)
-    image, reason = _image_cell(batch.column(plan.image), j, plan.image)
-    if image is None:
-        return Record(key, url, i, {}, error=f"{reason} at {where}")
+    if plan.images:
+        found, reason = _all_image_cells(batch, j, plan.images)
+        if reason is not None:
+            return Record(key, url, i, {}, error=f"{reason} at {where}")
+    else:
+        image, reason = _image_cell(batch.column(plan.image), j, plan.image)
+        if image is None:
+            return Record(key, url, i, {}, error=f"{reason} at {where}")
+        found = [(plan.image, image)]
     others = [(c, batch.column(c)[j]) for c in dict.fromkeys((plan.label, plan.text)) if c is not None]
-    size = _cell_size(image) + sum(_cell_size(s) for _, s in others)
+    size = sum(_cell_size(s) for _, s in found) + sum(_cell_size(s) for _, s in others)
     if max_sample_bytes is not None and size > max_sample_bytes:
         return Record(key, url, i, {}, error=(f"{where} is {size} bytes, over source.max_sample_bytes="
                                                f"{max_sample_bytes}; raise it in the recipe if such samples are expected"))
-    members = {plan.image: image.as_py()}
+    members = {name: scalar.as_py() for name, scalar in found}
     for column, scalar in others:
         value = _text_bytes(scalar.as_py())
         if value is not None:

@@ -43,12 +43,14 @@ class ShardTask:
 @dataclass(slots=True, frozen=True)
 class Fields:
     """The members a sample needs, for sources that hold more than them: the Parquet columns to read
-    (the first of `image_keys` present, the label and text columns) and an image folder's image
+    (the first of `image_keys` present, or with `all_images` every one and lists of images, the label
+    and text columns) and an image folder's image
     extensions. Readers given None read every column (and folders use DEFAULT_IMAGE_KEYS)."""
 
     image_keys: tuple[str, ...] = DEFAULT_IMAGE_KEYS
     label_key: str | None = None
     text_key: str | None = None
+    all_images: bool = False  # source.images_per_sample all: every image column, list columns unrolled
 
 
 def split_ext(name: str) -> tuple[str, str]:
