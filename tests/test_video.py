@@ -705,3 +705,28 @@ def test_bench_clips_counts_clips_and_images(tmp_path):
     assert (result["clips"], result["images"], result["frames_per_clip"]) == (3, 4, 4)
     assert result["clips_per_s"] > 0 and result["images_per_s"] > 0
     assert "clips" in format_clips_bench(result) and "images" in format_clips_bench(result)
+
+
+def test_an_image_folder_holds_clips_beside_images(tmp_path):
+    """source.video_keys make files of a folder samples too: a clip file is one clip sample (with its
+    sidecar caption), a still beside it an image sample, and the folder alone (no image file at all)
+    is still found as a source."""
+    folder = tmp_path / "media"
+    (folder / "walks").mkdir(parents=True)
+    (folder / "walks" / "c0.mp4").write_bytes(clip_bytes(12))
+    (folder / "walks" / "c0.txt").write_text("a slow pan over a grey wall")
+    (folder / "walks" / "c1.mp4").write_bytes(clip_bytes(10, 24, 48))
+    (folder / "still.png").write_bytes(encode_png(np.full((24, 40, 3), 77, np.uint8)))
+    r = recipe(sizing={"max_tokens": 64}, packing={"seq_len": 160, "rows": 2},
+               source={"shards": str(folder), "text_key": "txt"})
+    seen = {}
+    for b in Pipeline(r):
+        for row in range(b.rows):
+            for j, key in enumerate(b.keys[row]):
+                seen[key] = (int(b.frames[row, j]), b.texts[row][j])
+    assert seen == {"walks/c0": (4, "a slow pan over a grey wall"), "walks/c1": (4, ""), "still": (1, "")}
+    clips_only = tmp_path / "clips"
+    clips_only.mkdir()
+    (clips_only / "c0.mp4").write_bytes(clip_bytes(8))
+    r = recipe(source={"shards": str(clips_only)}, packing={"seq_len": 160, "rows": 1})
+    assert [k for b in Pipeline(r) for row in b.keys for k in row] == ["c0"]

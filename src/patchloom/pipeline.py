@@ -166,10 +166,10 @@ class Pipeline:
         self._fingerprint = recipe.fingerprint()
         src = recipe.source
         self.shards = expand_shards(shards if shards is not None else src.shards, allow_shell=allow_shell,
-                                    image_keys=src.image_keys)
+                                    image_keys=src.sample_keys)
         # What Parquet files and image folders are read for (tar shards give every member anyway).
         self._fields = Fields(tuple(src.image_keys), src.label_key, src.text_key,
-                              all_images=src.images_per_sample == "all")
+                              all_images=src.images_per_sample == "all", video_keys=tuple(src.video_keys))
         self.allow_shell = allow_shell
         self.rank, self.world_size = rank, world_size
         self.worker, self.num_workers = worker, num_workers

@@ -55,7 +55,7 @@ def print_classes(pipe: Pipeline) -> None:
     for url in pipe.shards:
         if source_kind(url) != "folder":
             continue
-        names = folder_classes(url, source.image_keys)
+        names = folder_classes(url, source.sample_keys)
         print(f"classes of image folder {url} (label_key: folder): {len(names)}")
         for i, name in enumerate(names):
             print(f"  {i:>6}  {name if name.isprintable() else ascii(name)}")

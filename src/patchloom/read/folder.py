@@ -244,7 +244,7 @@ def _record(listing: FolderListing, view: FolderSamples, url: str, i: int,
 def folder_units(url: str, fields: Fields | None) -> list[ShardTask]:
     """The reader units of a folder: chunks of FOLDER_CHUNK consecutive samples (the listing is
     checked for changes first: this runs when a reader sets up its epoch)."""
-    view = folder_listing(url, fresh=True).samples(fields.image_keys if fields is not None else None)
+    view = folder_listing(url, fresh=True).samples(fields.sample_keys if fields is not None else None)
     chunks = (len(view) + FOLDER_CHUNK - 1) // FOLDER_CHUNK
     return [ShardTask(url, unit=c) for c in range(chunks)] or [ShardTask(url)]
 
@@ -259,7 +259,7 @@ def read_folder(task: ShardTask, *, start: int = 0, wanted: set[int] | None = No
         listing = folder_listing(url)
     except SourceError as exc:
         raise shard_error(url, str(exc)) from None
-    view = listing.samples(fields.image_keys if fields is not None else None)
+    view = listing.samples(fields.sample_keys if fields is not None else None)
     n = len(view)
     lo, hi = (0, n) if task.unit < 0 else (task.unit * FOLDER_CHUNK, min(n, (task.unit + 1) * FOLDER_CHUNK))
     indices = range(max(lo, start), hi) if wanted is None else sorted(i for i in wanted if lo <= i < hi and i >= start)

@@ -51,6 +51,12 @@ class Fields:
     label_key: str | None = None
     text_key: str | None = None
     all_images: bool = False  # source.images_per_sample all: every image column, list columns unrolled
+    video_keys: tuple[str, ...] = ()  # an image folder's clip files (Parquet reads no clips)
+
+    @property
+    def sample_keys(self) -> tuple[str, ...]:
+        """The extensions that make a file a sample in an image folder: image_keys, then video_keys."""
+        return tuple(dict.fromkeys((*self.image_keys, *self.video_keys)))
 
 
 def split_ext(name: str) -> tuple[str, str]:

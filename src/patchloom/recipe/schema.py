@@ -96,6 +96,11 @@ class SourceConfig(_Section):
     max_skip_ratio: StrictFloat | None = Field(default=0.05, ge=0.0, le=1.0)
     max_sample_bytes: StrictInt = Field(default=100_000_000, ge=1)
 
+    @property
+    def sample_keys(self) -> list[str]:
+        """The extensions that make a file a sample in an image folder: image_keys, then video_keys."""
+        return list(dict.fromkeys([*self.image_keys, *self.video_keys]))
+
     @field_validator("video_keys")
     @classmethod
     def _video_keys(cls, v: list[str]) -> list[str]:

@@ -398,7 +398,8 @@ def build_report(recipe: Recipe | str | Path, out_dir: str | Path, *, shards=Non
     else:
         origin = "recipe object"
     seed = recipe.seed if seed is None else int(seed)
-    shard_list = expand_shards(shards if shards is not None else recipe.source.shards, allow_shell=allow_shell)
+    shard_list = expand_shards(shards if shards is not None else recipe.source.shards, allow_shell=allow_shell,
+                               image_keys=recipe.source.sample_keys)
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     _clear_previous(out)

@@ -122,10 +122,15 @@ def _moved_inputs(recorded: list[str], shards: str | list[str] | None, *, allow_
 
 
 def _recorded_image_keys(recipe: dict[str, Any]) -> list[str] | None:
-    """The recorded recipe's source.image_keys (which folders are image folders), if it is a list of names."""
+    """The recorded recipe's source.image_keys and video_keys (the files that make a folder an image
+    folder), if they are lists of names."""
     source = recipe.get("source")
     keys = source.get("image_keys") if isinstance(source, dict) else None
-    return keys if isinstance(keys, list) and all(isinstance(k, str) for k in keys) else None
+    if not (isinstance(keys, list) and all(isinstance(k, str) for k in keys)):
+        return None
+    videos = source.get("video_keys") or []
+    return list(dict.fromkeys(keys + videos)) if isinstance(videos, list) and all(
+        isinstance(k, str) for k in videos) else keys
 
 
 def _tail(url: str) -> str:

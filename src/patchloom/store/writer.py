@@ -109,7 +109,7 @@ def _classes(recipe: Recipe, inputs: list[str]) -> dict[str, list[str]] | None:
     """With `label_key: folder`, each image folder's class names in index order (the manifest's `classes`)."""
     if recipe.source.label_key != FOLDER_LABEL_MEMBER:
         return None
-    found = {url: folder_classes(url, recipe.source.image_keys) for url in inputs if source_kind(url) == "folder"}
+    found = {url: folder_classes(url, recipe.source.sample_keys) for url in inputs if source_kind(url) == "folder"}
     return found or None
 
 
@@ -158,7 +158,7 @@ def pack_to_dir(
     if overwrite and resume:
         raise StoreError("choose overwrite (start again) or resume (keep finished groups), not both")
     spec = shards if shards is not None else recipe.source.shards
-    inputs = input_paths(spec, allow_shell=allow_shell, image_keys=recipe.source.image_keys)
+    inputs = input_paths(spec, allow_shell=allow_shell, image_keys=recipe.source.sample_keys)
     out = Path(out_dir)
     _prepare_out(out, overwrite, resume)
     recipe_dict, fingerprint = recipe.to_dict(), recipe.fingerprint()
