@@ -8,6 +8,7 @@ rectangle, lattices and stripes by their row/column structure.
 
 from __future__ import annotations
 
+import math
 from fractions import Fraction
 
 import numpy as np
@@ -25,6 +26,8 @@ from patchloom.image.dropping import (
     drop_grid,
     drop_random,
     drop_stripes,
+    grid_stride,
+    content_scores,
     target_rate,
 )
 from patchloom.image.patches import PatchSet, grid_coords, patchify
@@ -644,3 +647,153 @@ def test_content_on_a_clip_decides_each_slice_from_its_own_pixels() -> None:
     np.testing.assert_array_equal(again.keep, d.keep)
     with pytest.raises(ValueError, match="needs the patches and their times"):
         decide_drop(cfg, (4, 4), patches, np.random.default_rng(1), coords=coords, times=None, slices=2)
+
+
+# --- exact counts and clips the statistics cannot see -------------------------------------------
+
+
+class ScriptedRng:
+    """Stands in for a Generator in drop_block: `random((k, 5))` hands out the given attempts' five
+    uniforms (u_area, u_aspect, u_top, u_left, u_anchor) in order, then zeros."""
+
+    def __init__(self, attempts: list[tuple[float, float, float, float, float]]) -> None:
+        self.rows = [list(a) for a in attempts]
+
+    def random(self, shape: tuple[int, int]) -> np.ndarray:
+        out = np.zeros(shape)
+        take, self.rows = self.rows[: shape[0]], self.rows[shape[0]:]
+        if take:
+            out[: len(take)] = take
+        return out
+
+
+def test_block_placement_is_anchored_from_the_ninth_rejection_in_a_row_exactly() -> None:
+    """On a 4x4 grid with 2x2 blocks and a target of 8: attempt 1 drops the top-left block; the next
+    eight attempts put the block there again and are rejected (nothing new); attempt 10, the first
+    after 8 rejections, is anchored on the first still-kept token (0, 2); attempt 9, still unanchored,
+    must not be (it would anchor on the last kept token, (3, 3))."""
+    first = (0.0, 0.5, 0.0, 0.0, 0.0)
+    again = [(0.0, 0.5, 0.0, 0.0, 0.0)] * 7
+    ninth = (0.0, 0.5, 0.0, 0.0, 0.999)  # anchored, this would cover (3, 3)
+    tenth = (0.0, 0.5, 0.0, 0.0, 0.0)  # anchored: token (0, 2); top 0, left 1 (the first covering place)
+    keep, rects = drop_block((4, 4), 0.5, ScriptedRng([first, *again, ninth, tenth]), min_area=4, aspect=(1.0, 1.0))
+    assert rects[:2] == [(0, 0, 2, 2), (0, 1, 2, 2)], rects
+    assert dropping.BLOCK_ANCHOR_AFTER == 8  # README and the statistics test name this count
+
+
+def test_grid_stride_keeps_everything_at_low_rates() -> None:
+    for grid in [(4, 4), (1, 9), (14, 14)]:
+        assert grid_stride(grid, 0.0) == 1 and grid_stride(grid, 0.2) == 1
+        assert grid_stride(grid, 0.75) == 2  # keeps 1/4
+        assert grid_stride(grid, 1.0) == max(grid)  # the largest stride that still means something
+
+
+def test_content_scores_are_the_exact_variance() -> None:
+    """uint8 patches: the integer sums give numpy's float64 variance to the last bit on these values;
+    float patches: numpy's float64 variance itself (not a float32 one)."""
+    rng = np.random.default_rng(5)
+    ints = rng.integers(0, 256, size=(50, 768), dtype=np.uint8)
+    np.testing.assert_allclose(content_scores(ints), ints.astype(np.float64).var(axis=1), rtol=1e-12)
+    floats = rng.random((50, 768)).astype(np.float32) * 1000
+    got = content_scores(floats)
+    assert got.dtype == np.float64
+    np.testing.assert_array_equal(got, floats.var(axis=1, dtype=np.float64))
+
+
+def test_a_tube_decision_repeats_one_spatial_choice_in_every_slice() -> None:
+    cfg = DropConfig(mode="tube", rate=0.5)
+    d = decide_drop(cfg, (4, 6), None, np.random.default_rng(3), slices=3)
+    keep = d.keep.reshape(3, 24)
+    assert d.slices == 3 and (keep == keep[0]).all() and keep[0].sum() == 12
+
+
+def test_apply_drop_reads_each_token_s_slice_of_the_decision() -> None:
+    """Three slices, the decision keeps slices 0 and 1 and drops slice 2: exactly the tokens of times 0
+    and 1 stay, in their order."""
+    gh, gw = 2, 3
+    coords = np.concatenate([grid_coords(gh, gw)] * 3)
+    times = np.repeat(np.arange(3, dtype=np.int32), gh * gw)
+    patches = np.arange(18 * 4, dtype=np.uint8).reshape(18, 4)
+    ps = PatchSet(patches=patches, coords=coords, grid=(gh, gw), key="clip", times=times, frames=3)
+    keep = np.repeat([True, True, False], gh * gw)
+    out = apply_drop(ps, DropDecision(keep, 1 / 3, (), "random", 3), "remove")
+    assert out.times.tolist() == [0] * 6 + [1] * 6
+    np.testing.assert_array_equal(out.patches, patches[:12])
+
+
+def test_every_mode_refuses_a_grid_with_an_empty_side() -> None:
+    for grid in [(0, 4), (4, 0)]:
+        for mode in MODES:
+            with pytest.raises(ValueError, match="both >= 1"):
+                decide_drop(DropConfig(mode=mode, rate=0.5), grid, np.zeros((0, 3)), np.random.default_rng(0))
+    with pytest.raises(ValueError, match="slices and window must be >= 1"):
+        decide_drop(DropConfig(mode="random", rate=0.5), (4, 4), None, np.random.default_rng(0), slices=0)
+
+
+def stripe_law(grid: tuple[int, int], target: int, floor: int) -> dict[tuple[int, int], float]:
+    """P(rows left, columns left) at the end of drop_stripes' documented procedure, by exact
+    recursion over fair coins: stop once target tokens are dropped; a stripe of the coin's
+    orientation unless that one would leave under `floor` tokens (then the other; neither: stop)."""
+    gh, gw = grid
+    n = gh * gw
+    law: dict[tuple[int, int], float] = {}
+
+    def walk(r: int, c: int, p: float, left: int) -> None:
+        can_row, can_col = r > 0 and (r - 1) * c >= floor, c > 0 and r * (c - 1) >= floor
+        if n - r * c >= target or left == 0 or not (can_row or can_col):
+            law[r, c] = law.get((r, c), 0.0) + p
+            return
+        for coin_row in (True, False):
+            row = can_row if coin_row else not can_col
+            walk(r - row, c - (not row), p / 2, left - 1)
+
+    walk(gh, gw, 1.0, gh + gw)
+    return law
+
+
+@pytest.mark.parametrize("grid, rate, floor", [((2, 4), 0.75, 0), ((3, 5), 0.9, 2), ((4, 4), 1.0, 0), ((1, 6), 0.5, 1),
+                                               ((3, 2), 0.8, 0)])
+def test_stripes_follow_the_law_of_their_coins(grid, rate, floor) -> None:
+    """The (rows, columns) left over 3,000 draws against the exact law (chi-square, p > 0.001)."""
+    from scipy import stats
+
+    gh, gw = grid
+    seen: dict[tuple[int, int], int] = {}
+    for i in range(3_000):
+        keep = drop_stripes(grid, rate, np.random.default_rng([9, i]), min_keep=floor).reshape(gh, gw)
+        rc = (int(keep.any(axis=1).sum()), int(keep.any(axis=0).sum())) if keep.any() else None
+        if rc is None:  # nothing kept: the rows or the columns ran out; the law says which
+            rc = ("empty",)
+        seen[rc] = seen.get(rc, 0) + 1
+    law: dict = {}
+    for (r, c), p in stripe_law(grid, math.floor(rate * gh * gw + 0.5), floor).items():
+        k = (r, c) if r and c else ("empty",)
+        law[k] = law.get(k, 0.0) + p
+    assert set(seen) <= set(law), (seen, law)
+    cells = sorted(law, key=str)
+    observed = [seen.get(k, 0) for k in cells]
+    if len(cells) > 1:
+        assert stats.chisquare(observed, [law[k] * 3_000 for k in cells]).pvalue > 0.001, (seen, law)
+
+
+def test_a_clip_with_merge_windows_drops_whole_windows_in_every_slice() -> None:
+    cfg = DropConfig(mode="random", rate=0.5)
+    gh, gw, m = 4, 6, 2
+    coords = np.concatenate([grid_coords(gh, gw)] * 3)
+    times = np.repeat(np.arange(3), gh * gw)
+    d = decide_drop(cfg, (gh, gw), None, np.random.default_rng(4), coords=coords, window=m, times=times, slices=3)
+    for keep in d.keep.reshape(3, gh, gw):
+        windows = keep.reshape(gh // m, m, gw // m, m).transpose(0, 2, 1, 3).reshape(-1, m * m)
+        assert (windows.all(axis=1) | ~windows.any(axis=1)).all()  # each window whole or gone
+        assert windows.all(axis=1).sum() == 3  # half of the 6 windows
+
+
+def test_the_aspect_draw_is_narrowed_to_blocks_that_fit_the_grid() -> None:
+    """A 4 x 50 grid, area 16: the top of the narrowed log-aspect range is the tallest block that fits,
+    4 x 4, so a draw at the top of the range (u = 0.999) is accepted at once; drawn from the whole
+    aspect range it would be 7 x 2, taller than the grid, and rejected."""
+    top = (0.0, 0.999, 0.0, 0.0, 0.0)
+    keep, rects = drop_block((4, 50), 16 / 200, ScriptedRng([top]), min_area=16)
+    assert rects == [(0, 0, 4, 4)] and np.count_nonzero(~keep) == 16
+    bottom = (0.0, 0.001, 0.0, 0.0, 0.0)  # on the 50 x 4 grid the bottom of the range is the widest: 4 x 4
+    assert drop_block((50, 4), 16 / 200, ScriptedRng([bottom]), min_area=16)[1] == [(0, 0, 4, 4)]

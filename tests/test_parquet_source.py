@@ -398,3 +398,24 @@ def test_a_list_column_without_all_says_what_to_set_and_a_null_element_skips_its
     assert set(skips) == {"views/1", "views/2"}
     assert "views[1]" in skips["views/1"] and "null" in skips["views/1"]
     assert "holds no image" in skips["views/2"]
+
+
+def test_list_view_columns_and_dotted_column_names_keep_the_image_order(tmp_path):
+    """A list_view column reads like a list; with image columns `jpg` and `left.jpg` the members
+    `0.jpg`, `1.left.jpg`, `2.left.jpg` stay in that order (the longest matching key names the column)."""
+    if not hasattr(pa, "ListViewArray"):
+        pytest.fail("this pyarrow has no list_view type; the test needs pyarrow >= 16")
+    rng = np.random.default_rng(14)
+    front = [_png(rng) for _ in range(2)]
+    side = [[_png(rng), _png(rng)], [_png(rng)]]
+    path = tmp_path / "views.parquet"
+    flat = pa.array([b for row in side for b in row], pa.binary())
+    views = pa.ListViewArray.from_arrays(pa.array([0, 2], pa.int32()), pa.array([2, 1], pa.int32()), flat)
+    table = pa.table({"jpg": pa.array(front, pa.binary()), "left.jpg": views})
+    pq.write_table(table, path)
+    fields = Fields(("jpg", "left.jpg"), None, None, all_images=True)
+    rec = next(iter(read_task(ShardTask(str(path)), fields=fields)))
+    assert list(rec.members) == ["0.jpg", "1.left.jpg", "2.left.jpg"]
+    from patchloom.image.chain import find_images
+
+    assert [data for _, data in find_images(rec, ["jpg", "left.jpg"])] == [front[0], *side[0]]

@@ -504,3 +504,16 @@ def test_members_of_no_sample_are_named_once_per_shard(tmp_path, caplog):
     with caplog.at_level("WARNING", logger="patchloom"):  # the other readers of a split shard stay quiet
         assert [r.key for r in read_shard(ShardTask(url, part=1, parts=2))] == ["photos/e"]
     assert not caplog.records
+
+
+def test_many_long_stray_names_give_a_short_warning(tmp_path, caplog):
+    """Only the first five names are kept (each shortened), whatever the shard holds."""
+    long_name = "x" * 5000
+    items = [(f"{long_name}{i}", b"") for i in range(40)] + [("k.jpg", b"1")]
+    url = str(write_tar(tmp_path / "s.tar", items, fmt=tarfile.PAX_FORMAT))
+    with caplog.at_level("WARNING", logger="patchloom"):
+        recs, err = read_all(url)
+    assert err is None and [r.key for r in recs] == ["k"]
+    (msg,) = [r.getMessage() for r in caplog.records]
+    assert "40 member(s) belong to no sample" in msg and msg.count("...") == 6  # five shortened names, then ...
+    assert len(msg) < 1000

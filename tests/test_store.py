@@ -404,10 +404,21 @@ def test_verify_follows_inputs_that_moved_when_shards_names_their_new_place(reci
     new = tmp_path / "new"
     src.rename(new)
     res = verify_dir(out, progress=False)
-    assert not res.ok and "is missing" in res.messages[0] and "pass --shards with their new place" in res.messages[0]
+    assert not res.ok and "is missing" in res.messages[0] and "pass --shards naming all 2" in res.messages[0]
     res = verify_dir(out, progress=False, shards=str(new / "demo-*.tar"))
     assert res.ok, res.messages
-    assert any("read where --shards names them now" in n for n in res.notes)
+    assert any("read where --shards names them now, paired with the recorded ones by file name" in n
+               for n in res.notes)
+    # by name, whatever order the spec gives them in
+    res = verify_dir(out, progress=False, shards=[str(new / "demo-000001.tar"), str(new / "demo-000000.tar")])
+    assert res.ok, res.messages
+    # renamed: paired in order, and the note says so
+    renamed = tmp_path / "renamed"
+    renamed.mkdir()
+    for i in range(2):
+        shutil.copy(new / f"demo-00000{i}.tar", renamed / f"part-{i}.tar")
+    res = verify_dir(out, progress=False, shards=str(renamed / "part-*.tar"))
+    assert res.ok and any("in order, as their names differ" in n for n in res.notes), (res.messages, res.notes)
     # the pairing is by order and every moved input is hashed: a changed copy is caught, named by its new path
     _rewrite_member(new / "demo-000001.tar", next(n for n in tarfile.open(new / "demo-000001.tar").getnames()
                                                    if n.endswith(".cls")), lambda b: b"7")

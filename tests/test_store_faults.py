@@ -482,20 +482,21 @@ def _recipe_file(tmp_path: Path, **source) -> Path:
     return path
 
 
-def test_pack_warns_once_per_failed_input_shard_and_sums_up(tmp_path, capsys, caplog):
+@pytest.mark.parametrize("workers", [1, 4])  # 4 groups over 3 shards: part readers share each shard
+def test_pack_warns_once_per_failed_input_shard_and_sums_up(tmp_path, capfd, caplog, workers):
     paths = _inputs_with_bad(tmp_path, bad=1)
     out = tmp_path / "out"
     spec = "{" + ",".join(paths) + "}"  # one brace spec naming the three shards
     assert _cli(["pack", str(_recipe_file(tmp_path, max_skip_ratio=0.5)), "--out", str(out), "--shards", spec,
-                 "--no-progress"]) == 0
-    captured = capsys.readouterr()
+                 "--workers", str(workers), "--no-progress"]) == 0
+    captured = capfd.readouterr()  # worker processes' output too
     said = captured.err.splitlines() + [r.getMessage() for r in caplog.records]  # printed, and logged
     named = [ln for ln in said if "broken-0.tar" in ln]
     assert len(named) == 1, said  # named once, as it failed; not again in the summary
     assert "1 of 3 input shards failed" in captured.err
     assert "inputs failed    1 of 3" in captured.out
     assert _cli(["verify", str(out), "--no-progress"]) == 0
-    assert "input shard failure(s) were recorded" in capsys.readouterr().out
+    assert "input shard failure(s) were recorded" in capfd.readouterr().out
 
 
 @pytest.mark.parametrize("workers", [1, 2])

@@ -130,7 +130,9 @@ class Pipeline:
     Failed shards and skipped samples count toward `source.max_skip_ratio` (see check_skip_guard),
     and with num_workers == 1 an epoch that yields no sample raises EmptyEpochError. A caller that
     sees the whole run instead (the torch loader, over all its workers) passes guard=False and
-    judges the merged ledgers itself.
+    judges the merged ledgers itself. Each failed shard is logged as it fails unless
+    `warn_shard_errors` is set to False by a caller that names them itself from the merged ledgers
+    (pack does, once per shard whichever group or engine read it).
 
     Observers (they watch, and change nothing): `on_record(record)` is called with each raw record
     the reader yields (after the ledger counted it, before the shuffle buffer), `on_sample(patchset)`
@@ -175,6 +177,7 @@ class Pipeline:
         self.worker, self.num_workers = worker, num_workers
         self.epoch = epoch
         self.guard = guard
+        self.warn_shard_errors = True
         self.on_record, self.on_sample, self.max_records = on_record, on_sample, max_records
         self.text_encoder = text_encoder
         self.ledger = Ledger()
@@ -237,7 +240,8 @@ class Pipeline:
             self._note_opened()
         # A shard failing again in a top-up pass is named but not counted twice.
         self.ledger.add_shard_error(Skip(url, "", "read", reason), counted=first_pass)
-        log.warning("shard %s failed: %s; its unread samples are not in this epoch", url, reason)
+        if self.warn_shard_errors:
+            log.warning("shard %s failed: %s; its unread samples are not in this epoch", url, reason)
         if self.guard:
             check_skip_guard(self.ledger, self.recipe.source.max_skip_ratio, final=False)
 

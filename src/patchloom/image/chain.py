@@ -169,8 +169,9 @@ def find_images(rec: Record, image_keys: list[str]) -> list[tuple[str, bytes]]:
     numeric order of the part before that extension (`2` before `10`); members without a number
     there sort first (by name), and equal numbers by name."""
     found = []
+    longest_first = sorted(image_keys, key=len, reverse=True)  # `1.left.jpg` is image 1 of `left.jpg`, not of `jpg`
     for ext, data in rec.members.items():
-        for k in image_keys:
+        for k in longest_first:
             if ext == k or ext.endswith("." + k):
                 head = ext[: -len(k) - 1] if ext != k else ""
                 number = int(head) if _NUMBER.fullmatch(head) else None

@@ -307,8 +307,9 @@ def drop_stripes(grid: tuple[int, int], rate: float, rng: np.random.Generator, *
     for coin in coins.tolist():
         if n - rows_left * cols_left >= target:
             break
-        can_row = rows_left > 0 and (rows_left - 1) * cols_left >= floor
-        can_col = cols_left > 0 and rows_left * (cols_left - 1) >= floor
+        # both sides are >= 1 here: with no row or column left nothing is kept, so the target (<= n) was met
+        can_row = (rows_left - 1) * cols_left >= floor
+        can_col = rows_left * (cols_left - 1) >= floor
         if not (can_row or can_col):
             break
         if can_row and (coin or not can_col):
@@ -327,10 +328,10 @@ def content_scores(patches: np.ndarray) -> np.ndarray:
     if x.ndim != 2:
         raise ValueError(f"patches must be [N, D] (got shape {x.shape})")
     d = x.shape[1]
-    if x.dtype == np.uint8 and 0 < d <= 33_000:  # exact integer sums; 33_000 * 255^2 < 2^31
-        xi = x.astype(np.int32)
-        s1 = xi.sum(axis=1, dtype=np.int64)
-        s2 = np.einsum("ij,ij->i", xi, xi).astype(np.int64)
+    if x.dtype == np.uint8 and d:  # exact integer sums (int64 holds d * 255^2 * d for any real d), 2x var's speed
+        xi = x.astype(np.int64)
+        s1 = xi.sum(axis=1)
+        s2 = np.einsum("ij,ij->i", xi, xi)
         return (s2 * d - s1 * s1) / float(d * d)
     return x.var(axis=1, dtype=np.float64)
 
@@ -350,7 +351,7 @@ def drop_content(patches: np.ndarray, rate: float, rng: np.random.Generator, *, 
     k = min(drop_count(rate, n), n - _floor_kept(min_keep, n))
     jitter = rng.standard_normal(n)
     ties = rng.random(n)
-    if noise and n > 1:  # noise >= 0 was checked above
+    if noise:  # noise >= 0 was checked above (one patch: its std is 0, nothing is added)
         scores = scores + (noise * float(scores.std())) * jitter
     keep = np.ones(n, dtype=bool)
     keep[np.lexsort((ties, scores))[:k]] = False
@@ -474,6 +475,8 @@ def decide_drop(cfg: DropConfig, grid: tuple[int, int], patches: np.ndarray | No
     """
     gh, gw = _check_grid(grid)
     mode = drop_mode(cfg.mode)
+    if slices < 1 or window < 1:
+        raise ValueError(f"slices and window must be >= 1 (got slices={slices}, window={window})")
     if slices > 1:
         return clip_drop(mode, cfg, (gh, gw), patches, rng, coords=coords, window=window, times=times,
                          slices=slices)

@@ -105,9 +105,12 @@ def _is_image_struct(pa: Any, typ: Any) -> bool:
                 and _is_binary(pa, typ.field(typ.get_field_index("bytes")).type))
 
 
+_LIST_TYPES = ("is_list", "is_large_list", "is_fixed_size_list", "is_list_view", "is_large_list_view")
+
+
 def _is_image_list(pa: Any, typ: Any) -> bool:
     t = pa.types
-    return bool((t.is_list(typ) or t.is_large_list(typ) or t.is_fixed_size_list(typ))
+    return bool(any(getattr(t, name, lambda _: False)(typ) for name in _LIST_TYPES)
                 and (_is_binary(pa, typ.value_type) or _is_image_struct(pa, typ.value_type)))
 
 

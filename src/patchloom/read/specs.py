@@ -165,8 +165,8 @@ def _folder_message(path: str, image_keys: Sequence[str] = DEFAULT_IMAGE_KEYS) -
     if tars:
         return f"shard path {path!r} is a folder; did you mean {pattern!r}? (it holds {len(tars)} .tar files)"
     return (f"shard path {path!r} is a folder without image files (looked for {', '.join(image_keys)} in it and "
-            "its sub-folders) and without .tar files: name the image extensions in source.image_keys, or give "
-            "the shard files themselves")
+            "its sub-folders) and without .tar files: name the image extensions in source.image_keys (clip "
+            "files' in source.video_keys), or give the shard files themselves")
 
 
 def _missing_message(path: str, item: str) -> str:

@@ -547,7 +547,8 @@ def read_shard(
         reader = _TarReader(raw, url)
         sample: _Sample | None = None
         index = -1
-        unread: list[str] = []
+        unread: list[str] = []  # the first few strays' names, shortened, for the warning
+        strays = 0
         while True:
             try:
                 member = reader.next()
@@ -562,7 +563,10 @@ def read_shard(
                 continue
             key, ext = split_member_name(member.name)
             if not member.regular or key is None or ext is None:
-                unread.append(member.name)  # a link or device, or no extension: part of no sample (as webdataset)
+                strays += 1  # a link or device, or no extension: part of no sample (as webdataset)
+                if len(unread) < 5:
+                    name = member.name
+                    unread.append(repr(name if len(name) <= 120 else name[:100] + "..." + name[-17:]))
                 continue
             if sample is None or key != sample.key:
                 if sample is not None and sample.keep:
@@ -594,10 +598,10 @@ def read_shard(
         if sample is not None and sample.keep:
             yield sample.record(url)
         reader.finish()
-        if unread and task.part == 0 and start == 0 and wanted is None:  # one reader of the shard says it
+        if strays and task.part == 0 and start == 0 and wanted is None:  # one reader of the shard says it
             log.warning("shard %s: %d member(s) belong to no sample and were not read: %s; a sample's members are "
-                        "regular files named KEY.EXT (links are not followed)", url, len(unread),
-                        ", ".join(repr(n) for n in unread[:5]) + (", ..." if len(unread) > 5 else ""))
+                        "regular files named KEY.EXT (links are not followed)", url, strays,
+                        ", ".join(unread) + (", ..." if strays > len(unread) else ""))
     finally:
         try:
             raw.close()

@@ -6,12 +6,11 @@ import argparse
 import sys
 import time
 from pathlib import Path
-from typing import Any
 
 from ..errors import PatchloomError
 from ..recipe import Recipe
 from .verify import verify_dir
-from .writer import ENGINES, pack_to_dir
+from .writer import ENGINES, failed_inputs, pack_to_dir
 from ..cli.args import non_negative, positive
 
 __all__ = ["add_store_commands", "cmd_pack", "cmd_verify"]
@@ -39,9 +38,8 @@ def cmd_pack(args: argparse.Namespace) -> int:
         return 2
     t = man["totals"]
     led = man["ledger"]
-    failed = _failed_inputs(led, [i["path"] for i in man["inputs"]])
-    # Each failed shard was already named once, as it failed (the pipeline's warning, also from
-    # worker processes); here only the count, so that no shard is reported twice.
+    failed = failed_inputs(led.get("shard_errors") or [], [i["path"] for i in man["inputs"]])
+    # pack_to_dir named each failed shard once (from the merged ledgers); here only the count.
     if failed:
         print(f"patchloom: warning: {len(failed)} of {len(man['inputs'])} input shards failed (under "
               "source.max_skip_ratio, so the pack went on); manifest.json lists them under ledger.shard_errors",
@@ -56,16 +54,6 @@ def cmd_pack(args: argparse.Namespace) -> int:
     print(f"  padding          {100 * t['padding_fraction']:.1f} %")
     print(f"  seconds          {time.perf_counter() - started:.2f}")
     return 0
-
-
-def _failed_inputs(ledger: dict[str, Any], inputs: list[str]) -> dict[str, str]:
-    """Input shard -> 'url: reason' for each one that failed (a shard several workers read is named once)."""
-    out: dict[str, str] = {}
-    for line in ledger.get("shard_errors") or []:
-        line = str(line)
-        url = next((u for u in inputs if line.startswith(u + ": ")), line.split(": ", 1)[0])
-        out.setdefault(url, line)
-    return out
 
 
 def cmd_verify(args: argparse.Namespace) -> int:

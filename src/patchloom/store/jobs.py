@@ -111,6 +111,9 @@ def _run_pipeline(job: dict[str, Any], report: Callable[[tuple], None],
     # several, each reads a share and the parent judges their merged ledgers (writer).
     pipe = Pipeline(recipe, shards=job["shards"], epoch=job["epoch"], worker=w, num_workers=job["workers"],
                     allow_shell=job["allow_shell"], guard=job["workers"] == 1)
+    # pack names each failed input once from the merged ledgers (writer._judge_run); a group's own
+    # warnings could repeat a shard (part readers) or be folded away by a cluster's log de-duplication
+    pipe.warn_shard_errors = False
     shape: dict[str, Any] | None = None
     n = images = tokens = slots = 0
     for batch in pipe:

@@ -106,19 +106,46 @@ def _confirm_inputs(recorded: list[str], spec: str | list[str] | None, *, allow_
 
 
 def _moved_inputs(recorded: list[str], shards: str | list[str] | None, *, allow_shell: bool,
-                  image_keys: list[str] | None) -> dict[str, str]:
-    """Recorded input -> where the user's `--shards` names it now, when the inputs moved as a whole: the
-    spec yields as many inputs as were recorded and none of the recorded paths; they pair up in order
-    (the caller hashes each against its record). Empty otherwise (then paths must match as recorded)."""
+                  image_keys: list[str] | None) -> tuple[dict[str, str], bool]:
+    """(recorded input -> where the user's `--shards` names it now, paired by name), when the inputs
+    moved as a whole: the spec yields as many distinct inputs as were recorded (themselves distinct)
+    and none of the recorded paths. They pair up by file name when the names are the recorded ones
+    (in any order), else in order (then the second value is True: renamed). The caller hashes each
+    against its record. Empty otherwise (then paths must match as recorded)."""
     if shards is None:
-        return {}
+        return {}, False
     try:
         now = input_paths(shards, allow_shell=allow_shell, image_keys=image_keys)
     except SourceError:
-        return {}
-    if len(now) != len(recorded) or len(set(now)) != len(now) or set(now) & set(recorded):
-        return {}
-    return dict(zip(recorded, now))
+        return {}, False
+    if (len(now) != len(recorded) or len(set(now)) != len(now) or len(set(recorded)) != len(recorded)
+            or set(now) & set(recorded)):
+        return {}, False
+    names = {_tail(u): u for u in now}
+    if len(names) == len(now) and sorted(names) == sorted(_tail(u) for u in recorded):
+        return {u: names[_tail(u)] for u in recorded}, False
+    return dict(zip(recorded, now)), True
+
+
+def _as_recorded(ledger: dict[str, Any], moved: dict[str, str]) -> dict[str, Any]:
+    """A re-run's ledger with moved inputs named as recorded: failed shards by their recorded path,
+    skip examples (`key (file name)`) by their recorded file name, so it compares with the manifest's."""
+    if not moved:
+        return ledger
+    back = {now: then for then, now in moved.items()}
+    names = {_tail(now): _tail(then) for now, then in back.items()}
+    out = dict(ledger)
+    out["shard_errors"] = [next((back[u] + line[len(u):] for u in back if line.startswith(u + ": ")), line)
+                           for line in ledger.get("shard_errors") or []]
+    examples = {}
+    for reason, items in (ledger.get("skip_examples") or {}).items():
+        fixed = []
+        for item in items:
+            key, sep, name = item.rpartition(" (")
+            fixed.append(f"{key} ({names[name[:-1]]})" if sep and name[:-1] in names else item)
+        examples[reason] = fixed
+    out["skip_examples"] = examples
+    return out
 
 
 def _recorded_image_keys(recipe: dict[str, Any]) -> list[str] | None:
@@ -169,11 +196,13 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
         spec = spec if isinstance(spec, str) or (isinstance(spec, list) and all(isinstance(s, str) for s in spec)) \
             else None
     image_keys = _recorded_image_keys(man["recipe"])
-    moved = _moved_inputs(recorded, shards, allow_shell=allow_shell, image_keys=image_keys)
+    moved, renamed = _moved_inputs(recorded, shards, allow_shell=allow_shell, image_keys=image_keys)
     if moved:
         confirmed, spec_problems = set(recorded), []
-        res.notes.append(f"the {len(moved)} inputs are read where --shards names them now, paired with the recorded "
-                         "inputs in order; each must hash as recorded")
+        how = ("in order, as their names differ from the recorded ones (sample keys taken from file names, as "
+               "in Parquet files without a __key__ column, then differ too)" if renamed else "by file name")
+        res.notes.append(f"the {len(moved)} input(s) are read where --shards names them now, paired with the "
+                         f"recorded ones {how}; each must hash as recorded")
     else:
         confirmed, spec_problems = _confirm_inputs(recorded, spec, allow_shell=allow_shell, image_keys=image_keys)
     for inp in man["inputs"]:
@@ -184,8 +213,10 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
                 problems.append(f"input shard {name} runs a shell command ({url}); pass --allow-shell to re-hash "
                                 "it (only for a folder you packed yourself)")
             elif is_local(url) and not os.path.lexists(url.removeprefix("file:")):
-                problems.append(f"input shard {name} is missing ({url}); if the inputs moved, pass --shards with "
-                                "their new place")
+                problems.append(f"input shard {name} is missing ({url}); if the inputs moved, pass --shards "
+                                f"naming all {len(recorded)} of them in their new place" if shards is None else
+                                f"input shard {name} is missing ({url}), and --shards pairs only when it names "
+                                f"all {len(recorded)} recorded inputs, none at a recorded path")
             else:
                 problems.append(f"input shard {name} is not among the inputs the shard spec gives now, so it was "
                                 f"not read ({url}); pass --shards SPEC to name the inputs yourself")
@@ -302,7 +333,7 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
             want = (man.get("worker_batches") or [None] * len(rerun))[w]
             if want is not None and r["batches"] != want:
                 problems.append(f"worker {w}: the re-run made {r['batches']} batches, the manifest records {want}")
-        ledger = merge_ledgers([r["ledger"] for r in rerun])
+        ledger = _as_recorded(merge_ledgers([r["ledger"] for r in rerun]), moved)
         recorded = man.get("ledger") or {}
         if ledger != recorded:
             def counts(d: dict[str, Any]) -> str:

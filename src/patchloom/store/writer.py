@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import logging
 import shutil
 from collections.abc import Iterator
 from pathlib import Path
@@ -29,6 +30,8 @@ from .engine_local import progress_bar, run_jobs
 from .format import COMPRESSIONS, GROUPS, MANIFEST, StoreError, is_int, is_pack_file, write_atomic
 from .inputs import hash_inputs, input_paths, spec_items
 from .manifest import MAX_WORKERS, build_manifest, check_manifest, manifest_bytes
+
+log = logging.getLogger("patchloom")
 
 __all__ = ["ENGINES", "pack_to_dir"]
 
@@ -82,10 +85,24 @@ def _unfinished(out: Path) -> str:
     return f" (no manifest written: {out} is an unfinished pack, which readers and verify refuse)"
 
 
+def failed_inputs(shard_errors: list[str], inputs: list[str]) -> dict[str, str]:
+    """Input shard -> its 'url: reason' line, for each one that failed (a ledger's `shard_errors`; a
+    shard that several part readers read, or a failure repeated in a top-up pass, is named once)."""
+    out: dict[str, str] = {}
+    for line in shard_errors:
+        line = str(line)
+        url = next((u for u in inputs if line.startswith(u + ": ")), line.split(": ", 1)[0])
+        out.setdefault(url, line)
+    return out
+
+
 def _judge_run(recipe: Recipe, results: list[dict[str, Any]], inputs: list[str], out: Path) -> None:
     """Refuse a run that lost too much (the skip guard over all workers' ledgers together: SkipRatioError)
     or packed nothing (EmptyEpochError, StoreError)."""
     ledger = Ledger.merged([Ledger.from_state(r["ledger_state"]) for r in results])
+    lines = [line for r in results for line in (r.get("ledger") or {}).get("shard_errors") or []]
+    for line in failed_inputs(lines, inputs).values():
+        log.warning("input shard %s; its samples are not in the pack", line)
     with _no_manifest_note(out):
         check_skip_guard(ledger, recipe.source.max_skip_ratio, final=True)
         check_not_empty(ledger, shards=len(inputs), where="the pack")
