@@ -12,7 +12,7 @@ image, so an algorithm that ignores it still serves one-image streams.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -31,9 +31,9 @@ class _Rows:
     seq_len: int
     cap: int  # images a row may hold
     fixed: bool
-    space: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
-    count: np.ndarray = field(default_factory=lambda: np.zeros(0, np.int64))
-    out: list[list[int]] = field(default_factory=list)
+    space: np.ndarray  # int64 [rows]: tokens of room left
+    count: np.ndarray  # int64 [rows]: images placed
+    out: list[list[int]]  # the items of each row
 
     @classmethod
     def start(cls, rows: int | None, seq_len: int, cap: int) -> _Rows:
@@ -41,14 +41,14 @@ class _Rows:
         return cls(seq_len, cap, rows is not None, np.full(n, seq_len, dtype=np.int64),
                    np.zeros(n, dtype=np.int64), [[] for _ in range(n)])
 
-    def fitting(self, size: int, k: int = 1) -> np.ndarray:
+    def fitting(self, size: int, k: int) -> np.ndarray:
         """Indices of the rows with room for `size` tokens and `k` more images."""
         return np.flatnonzero((self.space >= size) & (self.count + k <= self.cap))
 
-    def takes(self, row: int, size: int, k: int = 1) -> bool:
+    def takes(self, row: int, size: int, k: int) -> bool:
         return bool(self.space[row] >= size and self.count[row] + k <= self.cap)
 
-    def place(self, item: int, size: int, row: int, k: int = 1) -> int:
+    def place(self, item: int, size: int, row: int, k: int) -> int:
         """Put `item` in `row` (-1: no row takes it, so open one unless the rows are fixed).
         Returns the row it went to, or -1 when it has to wait for the next batch."""
         if row < 0:
