@@ -797,3 +797,24 @@ def test_the_aspect_draw_is_narrowed_to_blocks_that_fit_the_grid() -> None:
     assert rects == [(0, 0, 4, 4)] and np.count_nonzero(~keep) == 16
     bottom = (0.0, 0.001, 0.0, 0.0, 0.0)  # on the 50 x 4 grid the bottom of the range is the widest: 4 x 4
     assert drop_block((50, 4), 16 / 200, ScriptedRng([bottom]), min_area=16)[1] == [(0, 0, 4, 4)]
+
+
+def test_the_default_min_area_is_sixteen_tokens() -> None:
+    """BEiT's setting: with the default, a 16-token target on 14 x 14 is one 4 x 4 block (aspect 1 drawn
+    in the middle of the log range); a larger minimum could not make it."""
+    keep, rects = drop_block((14, 14), 16 / 196, ScriptedRng([(0.0, 0.5, 0.0, 0.0, 0.0)]))
+    assert rects == [(0, 0, 4, 4)] and np.count_nonzero(~keep) == 16
+
+
+def test_grid_stride_is_the_brute_force_nearest_at_every_rate() -> None:
+    for grid in [(14, 14), (3, 9)]:
+        for rate in np.linspace(0.0, 1.0, 81):
+            assert grid_stride(grid, float(rate)) == brute_stride(grid, float(rate)), (grid, rate)
+
+
+def test_apply_drop_with_nothing_dropped_keeps_every_token_and_says_so() -> None:
+    ps = PatchSet(patchify(np.zeros((8, 12, 3), np.uint8), 4), grid_coords(2, 3), (2, 3), "flat")
+    for how in ("remove", "mask"):
+        out = apply_drop(ps, DropDecision(np.ones(6, bool), 0.0, (), "random"), how)
+        assert out.num_tokens == 6 and out.meta["drop"]["kept"] == 6 and out.meta["drop"]["total"] == 6
+        np.testing.assert_array_equal(out.patches, ps.patches)

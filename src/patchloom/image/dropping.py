@@ -347,7 +347,7 @@ def drop_content(patches: np.ndarray, rate: float, rng: np.random.Generator, *, 
     if noise < 0:
         raise ValueError(f"noise must be >= 0 (got {noise})")
     scores = content_scores(patches)
-    n = scores.shape[0]
+    n = len(scores)
     k = min(drop_count(rate, n), n - _floor_kept(min_keep, n))
     jitter = rng.standard_normal(n)
     ties = rng.random(n)
