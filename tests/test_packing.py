@@ -53,6 +53,12 @@ def test_unbounded_rows_open_as_needed():
     assert rows == [[0], [1], [2]] and left == []
 
 
+@pytest.mark.parametrize("algorithm", sorted(ALGORITHMS))
+def test_nothing_to_place_opens_no_unbounded_row_and_fills_no_fixed_one(algorithm):
+    assert assign_rows([], seq_len=10, rows=None, algorithm=algorithm) == ([], [])
+    assert assign_rows([], seq_len=10, rows=2, algorithm=algorithm) == ([[], []], [])
+
+
 def test_item_larger_than_row_is_an_error():
     with pytest.raises(ValueError, match="seq_len"):
         assign_rows([11], seq_len=10, rows=1)

@@ -48,12 +48,12 @@ class _Rows:
     def takes(self, row: int, size: int, k: int) -> bool:
         return bool(self.space[row] >= size and self.count[row] + k <= self.cap)
 
-    def place(self, item: int, size: int, row: int, k: int) -> int:
-        """Put `item` in `row` (-1: no row takes it, so open one unless the rows are fixed).
-        Returns the row it went to, or -1 when it has to wait for the next batch."""
-        if row < 0:
+    def place(self, item: int, size: int, row: int | None, k: int) -> int | None:
+        """Put `item` in `row` (None: no row takes it, so open one unless the rows are fixed).
+        Returns the row it went to, or None when it has to wait for the next batch."""
+        if row is None:
             if self.fixed:
-                return -1
+                return None
             self.space = np.append(self.space, self.seq_len)
             self.count = np.append(self.count, 0)
             self.out.append([])
@@ -74,7 +74,7 @@ def first_fit(sizes: Sequence[int], *, seq_len: int, rows: int | None, cap: int,
     table, left = _Rows.start(rows, seq_len, cap), []
     for i, (s, k) in enumerate(zip(sizes, _ones(counts, len(sizes)))):
         fits = table.fitting(s, k)
-        if table.place(i, s, int(fits[0]) if fits.size else -1, k) < 0:
+        if table.place(i, s, int(fits[0]) if fits.size else None, k) is None:
             left.append(i)
     return table.out, left
 
@@ -85,8 +85,8 @@ def best_fit(sizes: Sequence[int], *, seq_len: int, rows: int | None, cap: int,
     table, left = _Rows.start(rows, seq_len, cap), []
     for i, (s, k) in enumerate(zip(sizes, _ones(counts, len(sizes)))):
         fits = table.fitting(s, k)
-        row = int(fits[np.argmin(table.space[fits])]) if fits.size else -1
-        if table.place(i, s, row, k) < 0:
+        row = int(fits[np.argmin(table.space[fits])]) if fits.size else None
+        if table.place(i, s, row, k) is None:
             left.append(i)
     return table.out, left
 
@@ -103,8 +103,8 @@ def in_order(sizes: Sequence[int], *, seq_len: int, rows: int | None, cap: int,
             continue
         while current < len(table.space) and not table.takes(current, s, k):
             current += 1
-        row = table.place(i, s, current if current < len(table.space) else -1, k)
-        if row < 0:
+        row = table.place(i, s, current if current < len(table.space) else None, k)
+        if row is None:
             left.append(i)
         else:
             current = row
