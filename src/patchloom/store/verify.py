@@ -334,13 +334,13 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
             if want is not None and r["batches"] != want:
                 problems.append(f"worker {w}: the re-run made {r['batches']} batches, the manifest records {want}")
         ledger = _as_recorded(merge_ledgers([r["ledger"] for r in rerun]), moved)
-        recorded = man.get("ledger") or {}
-        if ledger != recorded:
+        packed_ledger = man.get("ledger") or {}
+        if ledger != packed_ledger:
             def counts(d: dict[str, Any]) -> str:
                 return "/".join(str(d.get(k)) for k in ("read", "emitted", "skipped"))
 
             problems.append(f"the re-run's ledger differs: read/emitted/skipped {counts(ledger)}, recorded "
-                            f"{counts(recorded)}")
+                            f"{counts(packed_ledger)}")
         if differ:
             now, then = library_versions(), man.get("libraries", {})
             changed = [f"{k} {then.get(k)} -> {now.get(k)}" for k in sorted(set(now) | set(then))
