@@ -730,3 +730,14 @@ def test_an_image_folder_holds_clips_beside_images(tmp_path):
     (clips_only / "c0.mp4").write_bytes(clip_bytes(8))
     r = recipe(source={"shards": str(clips_only)}, packing={"seq_len": 160, "rows": 1})
     assert [k for b in Pipeline(r) for row in b.keys for k in row] == ["c0"]
+
+
+def test_a_clip_recipe_without_pyav_fails_at_once_naming_the_extra(tmp_path, monkeypatch):
+    """Not one skip per clip (which the skip guard might even let pass): the Pipeline refuses to start,
+    and a clip reached some other way (process_record) raises the same error, not a SampleError."""
+    shard = write_shard(tmp_path / "c.tar", [("c0", {"mp4": clip_bytes(8)}), ("i0", _still(90))])
+    monkeypatch.setitem(__import__("sys").modules, "av", None)
+    with pytest.raises(MissingExtraError, match=r"patchloom\[video\]"):
+        Pipeline(recipe(source={"shards": str(shard), "on_error": "skip", "max_skip_ratio": None}))
+    with pytest.raises(MissingExtraError, match=r"patchloom\[video\]"):
+        process_record(record("c", {"mp4": clip_bytes(8)}), recipe(source={"on_error": "skip"}), 0)

@@ -15,6 +15,7 @@ from collections.abc import Callable, Iterator, Sequence
 from typing import Any
 
 from .errors import PatchloomError
+from .extras import require
 from .image.chain import SampleError, SkipRatioError, image_to_patches, process_sample
 from .image.patches import PatchSet
 from .ledger import EmptyEpochError, Ledger, Skip, check_not_empty, check_skip_guard
@@ -167,6 +168,8 @@ class Pipeline:
         self.recipe = recipe
         self._fingerprint = recipe.fingerprint()
         src = recipe.source
+        if src.video_keys:  # every clip would fail: say so now, not once per sample
+            require("av", "video clips (source.video_keys)")
         self.shards = expand_shards(shards if shards is not None else src.shards, allow_shell=allow_shell,
                                     image_keys=src.sample_keys)
         # What Parquet files and image folders are read for (tar shards give every member anyway).

@@ -39,6 +39,7 @@ import numpy as np
 from PIL import Image
 
 from ..errors import PatchloomError
+from ..extras import MissingExtraError
 from ..seeding import sample_rng
 from .clip import clip_stages, find_video
 from .decode import OpenedImage, open_image, to_rgb, upright
@@ -120,7 +121,8 @@ def run_stages(stages: tuple[Stage, ...], work: Work, *, trace: dict[str, Any] |
     """Run the stages in order and return the PatchSet they made.
 
     With `shard` (the record path) any failure becomes a SampleError naming the shard, the key and
-    the stage; without it (the pixel path) the error comes through unchanged. A failing stage's
+    the stage; without it (the pixel path) the error comes through unchanged, as does a missing
+    extra (not the sample's fault: skipping would drop every such sample). A failing stage's
     time still counts in `timings`."""
     stage = None
     t0 = 0.0
@@ -138,7 +140,7 @@ def run_stages(stages: tuple[Stage, ...], work: Work, *, trace: dict[str, Any] |
     except Exception as exc:
         if timings is not None and stage is not None and stage.timing is not None:
             timings[stage.timing] = timings.get(stage.timing, 0.0) + time.perf_counter() - t0
-        if shard is None or isinstance(exc, SampleError):
+        if shard is None or isinstance(exc, (SampleError, MissingExtraError)):
             raise
         raise SampleError(shard, work.key, stage.name if stage else "select", f"{type(exc).__name__}: {exc}") from exc
     return work.ps  # type: ignore[return-value]  # every chain ends with a stage that sets it
