@@ -122,7 +122,8 @@ def test_folder_only_of_tars_keeps_its_hint_and_an_empty_one_says_why(tmp_path):
     empty = tmp_path / "empty"
     (empty / "sub").mkdir(parents=True)
     (empty / "sub" / "a.txt").write_text("x")
-    with pytest.raises(SourceError, match=r"folder without image files .*source\.image_keys"):
+    with pytest.raises(SourceError, match=r"folder without image files .*source\.image_keys \(clip files' in "
+                                          r"source\.video_keys\)"):
         expand_shards(str(empty))
     assert expand_shards([str(tmp_path / "tars" / "*.tar"), str(empty) + "/"], image_keys=["txt"])[-1] == str(empty)
 

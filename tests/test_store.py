@@ -428,3 +428,4 @@ def test_verify_follows_inputs_that_moved_when_shards_names_their_new_place(reci
     # a spec that names fewer inputs than were recorded pairs nothing: the paths must then match
     res = verify_dir(out, progress=False, shards=str(new / "demo-000000.tar"))
     assert not res.ok and any("was not an input when packed" in m for m in res.messages)
+    assert any("--shards pairs only when it names all 2 recorded inputs" in m for m in res.messages)
