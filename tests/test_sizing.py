@@ -660,3 +660,25 @@ def test_area_resize_is_the_block_mean_at_whole_factors_and_averages_at_fraction
     shifted = resize_area(arr, (64, 43), (0.5, 0.5, 96.0, 64.0))  # a fractional box: the affine path
     box_shifted = np.asarray(Image.fromarray(arr).resize((64, 43), Image.Resampling.BOX, box=(0.5, 0.5, 96.0, 64.0)))
     assert err(shifted, box_shifted) < err(shifted, box) and err(shifted, box_shifted) < err(cubic, box)
+
+
+def test_a_missing_opencv_is_one_error_naming_the_package_not_a_skip_per_sample(tmp_path, monkeypatch):
+    """OpenCV is a dependency of patchloom; if it is gone the area resize cannot run at all, so the
+    first sample raises (MissingExtraError, one line naming the distribution) instead of being skipped."""
+    import sys
+
+    from conftest import make_shards
+
+    from patchloom import Pipeline, Recipe
+    from patchloom.extras import MissingExtraError
+    from patchloom.image import sizing
+
+    shards = make_shards(tmp_path, 1, 4)
+    monkeypatch.setitem(sys.modules, "cv2", None)
+    monkeypatch.setattr(sizing, "_cv2_pid", -1)  # as in a fresh process
+    recipe = Recipe.from_dict({"source": {"shards": shards, "max_skip_ratio": None},
+                               "sizing": {"patch_size": 8, "max_tokens": 16, "resample": "area"},
+                               "packing": {"seq_len": 64, "rows": 1}})
+    with pytest.raises(MissingExtraError) as info:
+        list(Pipeline(recipe))
+    assert "opencv-python-headless" in str(info.value) and "\n" not in str(info.value)

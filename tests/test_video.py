@@ -741,3 +741,23 @@ def test_a_clip_recipe_without_pyav_fails_at_once_naming_the_extra(tmp_path, mon
         Pipeline(recipe(source={"shards": str(shard), "on_error": "skip", "max_skip_ratio": None}))
     with pytest.raises(MissingExtraError, match=r"patchloom\[video\]"):
         process_record(record("c", {"mp4": clip_bytes(8)}), recipe(source={"on_error": "skip"}), 0)
+
+
+def test_pack_refuses_a_clip_recipe_without_pyav_before_touching_the_output(tmp_path, monkeypatch):
+    from patchloom.store import pack_to_dir
+
+    shard = write_shard(tmp_path / "c.tar", [("c0", {"mp4": clip_bytes(8)})])
+    monkeypatch.setitem(__import__("sys").modules, "av", None)
+    out = tmp_path / "packed"
+    with pytest.raises(MissingExtraError, match=r"patchloom\[video\]"):
+        pack_to_dir(recipe(source={"shards": str(shard)}), out, workers=2, progress=False)
+    assert not out.exists()
+
+
+def test_the_torch_dataset_refuses_a_clip_recipe_without_pyav_in_the_main_process(monkeypatch):
+    pytest.importorskip("torch")
+    from patchloom.adapters.torch import PatchloomDataset
+
+    monkeypatch.setitem(__import__("sys").modules, "av", None)
+    with pytest.raises(MissingExtraError, match=r"patchloom\[video\]"):
+        PatchloomDataset(recipe(source={"shards": "unused-*.tar"}))

@@ -10,13 +10,15 @@ from .errors import PatchloomError
 #: Importable module -> the patchloom extra that installs it.
 EXTRAS: dict[str, str] = {
     "albumentations": "augment",
-    "cv2": "augment",
     "matplotlib": "report",
     "torch": "torch",
     "ray": "ray",
     "pyarrow": "parquet",
     "av": "video",
 }
+
+#: Modules of patchloom's own dependencies whose distribution has another name; missing, the install is broken.
+CORE: dict[str, str] = {"cv2": "opencv-python-headless", "PIL": "pillow", "yaml": "pyyaml"}
 
 
 class MissingExtraError(PatchloomError, ImportError):
@@ -28,6 +30,9 @@ def missing_extra_message(module: str, purpose: str = "") -> str:
     top = module.split(".", 1)[0]
     extra = EXTRAS.get(top)
     why = f" for {purpose}" if purpose else ""
+    if top in CORE:
+        return (f"the package {top!r} ({CORE[top]}, which patchloom depends on) is needed{why} but is not "
+                f"installed: pip install {CORE[top]}, or reinstall patchloom")
     if extra is None:
         return f"the package {top!r} is needed{why} but is not installed: pip install {top}"
     hint = " (on CPU-only machines install torch==2.13.0 first)" if extra == "torch" else ""
@@ -48,6 +53,6 @@ def as_missing_extra(exc: BaseException) -> str | None:
     """The one-line message for a ModuleNotFoundError of a known optional package, else None."""
     if isinstance(exc, MissingExtraError):
         return str(exc)
-    if isinstance(exc, ModuleNotFoundError) and exc.name and exc.name.split(".", 1)[0] in EXTRAS:
+    if isinstance(exc, ModuleNotFoundError) and exc.name and exc.name.split(".", 1)[0] in {**EXTRAS, **CORE}:
         return missing_extra_message(exc.name)
     return None

@@ -37,7 +37,7 @@ from .recipe.schema import Recipe
 from .seeding import stream_rng
 
 __all__ = ["EmptyEpochError", "Ledger", "Pipeline", "SampleError", "Skip", "SkipRatioError", "StateError",
-           "image_to_patches"]
+           "image_to_patches", "require_recipe_extras"]
 
 
 _SKIP_ADVICE = re.compile(r"[,;]?\s*(?:or )?set source\.on_error: skip to drop such samples")
@@ -58,6 +58,13 @@ log = logging.getLogger("patchloom")
 
 class StateError(PatchloomError, ValueError):
     """A resume state this pipeline cannot continue from; the message says why and what to do."""
+
+
+def require_recipe_extras(recipe: Recipe) -> None:
+    """Refuse a recipe whose samples would all fail for a missing package (MissingExtraError naming it):
+    said once, before any work, not once per sample."""
+    if recipe.source.video_keys:
+        require("av", "video clips (source.video_keys)")
 
 
 def check_state_version(version: Any) -> None:
@@ -168,8 +175,7 @@ class Pipeline:
         self.recipe = recipe
         self._fingerprint = recipe.fingerprint()
         src = recipe.source
-        if src.video_keys:  # every clip would fail: say so now, not once per sample
-            require("av", "video clips (source.video_keys)")
+        require_recipe_extras(recipe)
         self.shards = expand_shards(shards if shards is not None else src.shards, allow_shell=allow_shell,
                                     image_keys=src.sample_keys)
         # What Parquet files and image folders are read for (tar shards give every member anyway).

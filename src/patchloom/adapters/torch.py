@@ -30,7 +30,7 @@ except ImportError as exc:  # pragma: no cover - exercised only without the extr
 
 from ..ledger import Ledger, Skip, check_not_empty, check_skip_guard
 from ..packing.text import TextEncoder
-from ..pipeline import Pipeline, StateError, check_state
+from ..pipeline import Pipeline, StateError, check_state, require_recipe_extras
 from ..read import describe_identity_change, shard_identity, split_shards
 from ..recipe.schema import Recipe
 
@@ -160,6 +160,7 @@ class PatchloomDataset(IterableDataset):
         pool_slots: int = POOL_SLOTS,
     ) -> None:
         super().__init__()
+        require_recipe_extras(recipe)  # here, in the main process: one line, not a worker's traceback
         self.recipe = recipe
         self.shards = shards
         self.rank, self.world_size = rank, world_size

@@ -304,8 +304,7 @@ def _configure_cv2() -> None:
     global _cv2_configured
     with _lock:
         if not _cv2_configured:
-            import cv2
-
+            cv2 = require("cv2", "augmentation")
             cv2.setNumThreads(0)  # parallelism comes from patchloom's workers, not OpenCV's pool
             _cv2_configured = True
 

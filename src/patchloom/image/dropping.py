@@ -328,7 +328,7 @@ def content_scores(patches: np.ndarray) -> np.ndarray:
     if x.ndim != 2:
         raise ValueError(f"patches must be [N, D] (got shape {x.shape})")
     d = x.shape[1]
-    if x.dtype == np.uint8 and d:  # exact integer sums (int64 holds d * 255^2 * d for any real d), 2x var's speed
+    if x.dtype == np.uint8 and d:  # exact integer sums (int64 holds d * 255^2 * d for any real d), about 2x var's speed
         xi = x.astype(np.int64)
         s1 = xi.sum(axis=1)
         s2 = np.einsum("ij,ij->i", xi, xi)

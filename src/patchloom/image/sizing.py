@@ -22,6 +22,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from PIL import Image
 
+from ..extras import require
 from .decode import DecodedImage
 
 if TYPE_CHECKING:  # the recipe reads the tables, so no run-time import of it here
@@ -42,7 +43,7 @@ def _opencv():
     """OpenCV, imported on first use and set to one thread in each process: loaders already run one
     process per core, and OpenCV's own thread pool would only compete with them."""
     global _cv2_pid
-    import cv2
+    cv2 = require("cv2", "the area resize (sizing.resample: area, the default)")
 
     pid = os.getpid()
     if pid != _cv2_pid:

@@ -113,8 +113,8 @@ def add_store_commands(subparsers) -> None:
     verify.add_argument("--shards", default=None,
                         help="shard spec naming the inputs (default: the spec recorded when packing); only "
                              "inputs both this spec and the manifest name are read, or, when the inputs moved, "
-                             "as many as were recorded and none at a recorded path: they pair up in order and "
-                             "each must hash as recorded")
+                             "as many as were recorded and none at a recorded path: they pair up by file name "
+                             "(by content when renamed) and each must hash as recorded")
     verify.add_argument("--allow-shell", action="store_true",
                         help="allow pipe: input shard URLs (they run commands: only for folders you packed)")
     verify.add_argument("--no-progress", action="store_true", help="no progress bar")

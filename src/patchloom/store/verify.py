@@ -105,13 +105,16 @@ def _confirm_inputs(recorded: list[str], spec: str | list[str] | None, *, allow_
     return confirmed, problems
 
 
-def _moved_inputs(recorded: list[str], shards: str | list[str] | None, *, allow_shell: bool,
-                  image_keys: list[str] | None) -> tuple[dict[str, str], bool]:
-    """(recorded input -> where the user's `--shards` names it now, paired by name), when the inputs
-    moved as a whole: the spec yields as many distinct inputs as were recorded (themselves distinct)
-    and none of the recorded paths. They pair up by file name when the names are the recorded ones
-    (in any order), else in order (then the second value is True: renamed). The caller hashes each
-    against its record. Empty otherwise (then paths must match as recorded)."""
+def _moved_inputs(inputs: list[dict[str, Any]], shards: str | list[str] | None, *, allow_shell: bool,
+                  image_keys: list[str] | None,
+                  hashed: dict[str, tuple[int, str]]) -> tuple[dict[str, str], bool]:
+    """(recorded input -> where the user's `--shards` names it now, renamed?), when the inputs moved as
+    a whole: the spec yields as many distinct inputs as were recorded (themselves distinct) and none
+    of the recorded paths. They pair up by file name when the names are the recorded ones (in any
+    order); renamed, by content: each new input is hashed (into `hashed`, which the caller reuses)
+    and takes the recorded input of the same hash, the rest pairing in order (and then reported as
+    changed). Empty otherwise (then paths must match as recorded)."""
+    recorded = [inp["path"] for inp in inputs]
     if shards is None:
         return {}, False
     try:
@@ -124,7 +127,16 @@ def _moved_inputs(recorded: list[str], shards: str | list[str] | None, *, allow_
     names = {_tail(u): u for u in now}
     if len(names) == len(now) and sorted(names) == sorted(_tail(u) for u in recorded):
         return {u: names[_tail(u)] for u in recorded}, False
-    return dict(zip(recorded, now)), True
+    by_digest: dict[str, list[str]] = {}
+    for u in now:
+        try:
+            hashed[u] = hash_input(u, allow_shell=allow_shell)
+        except (OSError, SourceError, StoreError):
+            continue  # reported when the caller reads it
+        by_digest.setdefault(hashed[u][1], []).append(u)
+    pairs = {inp["path"]: by_digest[inp["sha256"]].pop(0) for inp in inputs if by_digest.get(inp["sha256"])}
+    rest = iter(u for u in now if u not in pairs.values())
+    return {u: pairs[u] if u in pairs else next(rest) for u in recorded}, True
 
 
 def _as_recorded(ledger: dict[str, Any], moved: dict[str, str]) -> dict[str, Any]:
@@ -196,10 +208,12 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
         spec = spec if isinstance(spec, str) or (isinstance(spec, list) and all(isinstance(s, str) for s in spec)) \
             else None
     image_keys = _recorded_image_keys(man["recipe"])
-    moved, renamed = _moved_inputs(recorded, shards, allow_shell=allow_shell, image_keys=image_keys)
+    hashed: dict[str, tuple[int, str]] = {}
+    moved, renamed = _moved_inputs(man["inputs"], shards, allow_shell=allow_shell, image_keys=image_keys,
+                                   hashed=hashed)
     if moved:
         confirmed, spec_problems = set(recorded), []
-        how = ("in order, as their names differ from the recorded ones (sample keys taken from file names, as "
+        how = ("by content, as their names differ from the recorded ones (sample keys taken from file names, as "
                "in Parquet files without a __key__ column, then differ too)" if renamed else "by file name")
         res.notes.append(f"the {len(moved)} input(s) are read where --shards names them now, paired with the "
                          f"recorded ones {how}; each must hash as recorded")
@@ -223,7 +237,7 @@ def verify_dir(out_dir: str | Path, *, progress: bool = True, allow_shell: bool 
             inputs_ok = False
             continue
         try:
-            size, digest = hash_input(url, allow_shell=allow_shell)
+            size, digest = hashed[url] if url in hashed else hash_input(url, allow_shell=allow_shell)
         except (OSError, SourceError, StoreError) as exc:
             problems.append(f"input shard {name} cannot be read ({exc})")
             inputs_ok = False

@@ -24,6 +24,7 @@ from typing import Any
 
 from ..image.chain import SkipRatioError
 from ..ledger import EmptyEpochError, Ledger, check_not_empty, check_skip_guard
+from ..pipeline import require_recipe_extras
 from ..read import FOLDER_LABEL_MEMBER, folder_classes, source_kind
 from ..recipe import Recipe
 from .engine_local import progress_bar, run_jobs
@@ -174,6 +175,7 @@ def pack_to_dir(
                          "engine packs from scratch (use --overwrite to replace a previous pack)")
     if overwrite and resume:
         raise StoreError("choose overwrite (start again) or resume (keep finished groups), not both")
+    require_recipe_extras(recipe)  # before the output folder is touched
     spec = shards if shards is not None else recipe.source.shards
     inputs = input_paths(spec, allow_shell=allow_shell, image_keys=recipe.source.sample_keys)
     out = Path(out_dir)
