@@ -419,3 +419,12 @@ def test_list_view_columns_and_dotted_column_names_keep_the_image_order(tmp_path
     from patchloom.image.chain import find_images
 
     assert [data for _, data in find_images(rec, ["jpg", "left.jpg"])] == [front[0], *side[0]]
+
+
+def test_a_label_column_named_like_an_image_member_is_refused(tmp_path):
+    rng = np.random.default_rng(15)
+    path = tmp_path / "odd.parquet"
+    pq.write_table(pa.table({"img": pa.array([[_png(rng)]], pa.list_(pa.binary())), "0.img": pa.array([3])}), path)
+    fields = Fields(("img",), "0.img", None, all_images=True)
+    with pytest.raises(ShardError, match=r"column '0\.img' has the name an image of the row gets"):
+        list(read_task(ShardTask(str(path)), fields=fields))

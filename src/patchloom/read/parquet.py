@@ -141,6 +141,12 @@ def _plan(schema: Any, fields: Fields | None, url: str) -> _Plan:
                                "source.image_keys to the column holding the image files")
     label = _named_column(fields.label_key, names, url, "label_key", "label")
     text = _named_column(fields.text_key, names, url, "text_key", "text")
+    if fields.all_images:  # images become members `n.<column>`: a label or text column so named would be lost
+        clash = next((c for c in (label, text) if c is not None and c.partition(".")[0].isdigit()
+                      and c.partition(".")[2] in images), None)
+        if clash is not None:
+            raise shard_error(url, f"column {clash!r} has the name an image of the row gets with images_per_sample "
+                                   "all (`<n>.<image column>`): rename the column")
     columns = list(dict.fromkeys(c for c in (*images, label, text, key) if c is not None))
     return _Plan(columns=columns, image=image, label=label, text=text, key=key,
                  images=images if fields.all_images else ())
