@@ -21,6 +21,17 @@ def random_image(rng: np.random.Generator, h: int, w: int) -> np.ndarray:
     return rng.integers(0, 256, size=(h, w, 3), dtype=np.uint8)
 
 
+def labels_texts(batches) -> dict[str, tuple[int, str]]:
+    """key -> (label, text) of every image the batches hold; a key seen twice fails the test."""
+    out = {}
+    for b in batches:
+        for r, keys in enumerate(b.keys):
+            for j, key in enumerate(keys):
+                assert key not in out, f"{key} emitted twice"
+                out[key] = (int(b.labels[r, j]), b.texts[r][j])
+    return out
+
+
 def write_shard(path: Path, samples: list[tuple[str, dict[str, bytes]]]) -> Path:
     """Write webdataset-style members `{key}.{ext}` with Python's tarfile."""
     with tarfile.open(path, "w") as tar:

@@ -30,7 +30,7 @@ from patchloom.recipe.schema import DEFAULT_IMAGE_KEYS as RECIPE_IMAGE_KEYS
 from patchloom.store import load_manifest, pack_to_dir, read_packed, verify_dir
 from patchloom.testing import batches_equal, check_resume
 
-from conftest import encode_png, make_shards, random_image
+from conftest import encode_png, labels_texts, make_shards, random_image
 
 pytestmark = pytest.mark.filterwarnings("ignore:image folder .* ignored", "ignore:.* shards for .* readers")
 BASE = {
@@ -69,16 +69,6 @@ def make_folder(root: Path, *, per_class: int = 5, seed: int = 0) -> dict[str, t
     return want
 
 
-def _labels_texts(batches) -> dict[str, tuple[int, str]]:
-    out = {}
-    for b in batches:
-        for r, keys in enumerate(b.keys):
-            for j, key in enumerate(keys):
-                assert key not in out, f"{key} emitted twice"
-                out[key] = (int(b.labels[r, j]), b.texts[r][j])
-    return out
-
-
 @pytest.fixture
 def photos(tmp_path) -> tuple[Path, dict[str, tuple[int, str]]]:
     root = tmp_path / "photos"
@@ -89,7 +79,7 @@ def photos(tmp_path) -> tuple[Path, dict[str, tuple[int, str]]]:
 def test_class_folders_sorted_indices_sidecar_captions_and_nested_folders(photos):
     root, want = photos
     with pytest.warns(UserWarning, match=r"3 files are neither images"):  # notes.md, readme.txt, .DS_Store
-        got = _labels_texts(Pipeline(Recipe.from_dict(BASE), shards=str(root)))
+        got = labels_texts(Pipeline(Recipe.from_dict(BASE), shards=str(root)))
     assert got == want
     assert "zebra/deep/er/img4" in got and got["zebra/deep/er/img4"][0] == 2
 
@@ -135,7 +125,7 @@ def test_ranks_disjoint_and_complete(photos, monkeypatch, world_size):
     recipe = Recipe.from_dict(BASE)
     seen: Counter = Counter()
     for rank in range(world_size):
-        got = _labels_texts(Pipeline(recipe, shards=str(root), rank=rank, world_size=world_size))
+        got = labels_texts(Pipeline(recipe, shards=str(root), rank=rank, world_size=world_size))
         assert got, f"rank {rank} got nothing"
         seen.update(list(got))
     assert seen == Counter(dict.fromkeys(want, 1))

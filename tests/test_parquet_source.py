@@ -33,7 +33,7 @@ from patchloom.seeding import stream_rng  # noqa: E402
 from patchloom.store import pack_to_dir, read_packed, verify_dir  # noqa: E402
 from patchloom.testing import batches_equal, check_resume  # noqa: E402
 
-from conftest import encode_png, make_shards, random_image  # noqa: E402
+from conftest import encode_png, labels_texts, make_shards, random_image  # noqa: E402
 
 pytestmark = pytest.mark.filterwarnings("ignore:.* shards for .* readers")
 BASE = {
@@ -79,16 +79,6 @@ def two_files(tmp_path) -> tuple[list[str], dict[str, dict]]:
     return [str(a), str(b)], rows
 
 
-def _keys_labels_texts(batches) -> dict[str, tuple[int, str]]:
-    out = {}
-    for b in batches:
-        for r, keys in enumerate(b.keys):
-            for j, key in enumerate(keys):
-                assert key not in out, f"{key} emitted twice"
-                out[key] = (int(b.labels[r, j]), b.texts[r][j])
-    return out
-
-
 def test_records_carry_image_label_caption_and_key(two_files):
     paths, rows = two_files
     recs = [r for p in paths for r in read_task(ShardTask(p), fields=FIELDS)]
@@ -106,7 +96,7 @@ def test_pipeline_labels_and_captions_right_for_every_key(two_files, tmp_path):
     tar = make_shards(tmp_path, 1, 4)  # tar shards and Parquet files mix in one spec
     recipe = Recipe.from_dict({**BASE, "source": {**BASE["source"], "image_keys": ["image", "png"],
                                                   "label_key": "label"}})
-    got = _keys_labels_texts(Pipeline(recipe, shards=[paths[0], tar[0], paths[1]]))
+    got = labels_texts(Pipeline(recipe, shards=[paths[0], tar[0], paths[1]]))
     assert {k: v for k, v in got.items() if k in rows} == {k: (r["label"], r["caption"]) for k, r in rows.items()}
     assert len(got) == len(rows) + 4  # and the tar's samples
 
@@ -117,7 +107,7 @@ def test_json_field_label_from_a_string_column(tmp_path):
     pq.write_table(pa.table({"image": [_png(rng) for _ in range(4)],
                              "meta": [json.dumps({"cls": i * 2, "note": "x"}) for i in range(4)]}), path)
     recipe = Recipe.from_dict({**BASE, "source": {"image_keys": ["image"], "label_key": "meta:cls"}})
-    got = _keys_labels_texts(Pipeline(recipe, shards=str(path)))
+    got = labels_texts(Pipeline(recipe, shards=str(path)))
     assert {k: v[0] for k, v in got.items()} == {f"meta/{i}": i * 2 for i in range(4)}
 
 
@@ -137,7 +127,7 @@ def test_ranks_read_disjoint_and_complete_shares(two_files, world_size):
     seen: Counter = Counter()
     per_rank = []
     for rank in range(world_size):
-        keys = _keys_labels_texts(Pipeline(recipe, shards=paths, rank=rank, world_size=world_size))
+        keys = labels_texts(Pipeline(recipe, shards=paths, rank=rank, world_size=world_size))
         seen.update(list(keys))
         per_rank.append(len(keys))
     assert seen == Counter(dict.fromkeys(rows, 1))  # every row once, across all ranks
@@ -213,7 +203,7 @@ def test_null_image_cell_is_a_skip_naming_file_row_and_reason(tmp_path):
                    nested)
     recipe = Recipe.from_dict({**BASE, "source": {"image_keys": ["image"], "label_key": None, "max_skip_ratio": 0.5}})
     pipe = Pipeline(recipe, shards=[str(flat), str(nested)])
-    emitted = _keys_labels_texts(pipe)
+    emitted = labels_texts(pipe)
     skips = {s.key: s for s in pipe.ledger.skipped}
     assert set(skips) == {"flat/4", "nested/2"} and len(emitted) == 10
     assert skips["flat/4"].shard == str(flat)
@@ -254,7 +244,7 @@ def test_corrupt_files_are_shard_errors_naming_file_and_row_group(tmp_path):
     write_parquet(good, 20, seed=10, row_group=5)
     recipe = Recipe.from_dict({**BASE, "source": {**BASE["source"], "max_skip_ratio": 0.9}})
     pipe = Pipeline(recipe, shards=[str(damaged), str(good)])
-    assert len(_keys_labels_texts(pipe)) == 20 + 3
+    assert len(labels_texts(pipe)) == 20 + 3
     failed = pipe.ledger.to_dict()["shard_errors"]
     assert len(failed) == 1 and failed[0].startswith(str(damaged)) and "row group 1" in failed[0]
 

@@ -15,6 +15,7 @@ import json
 import math
 import sys
 import tarfile
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
@@ -71,6 +72,25 @@ def _add(tar: tarfile.TarFile, name: str, data: bytes) -> None:
     tar.addfile(info, io.BytesIO(data))
 
 
+def write_sample_shards(paths: list[Path], images: int, sample: Callable[[int, int], tuple[str, list]], *,
+                        desc: str, progress: bool) -> None:
+    """Spread `images` samples over the shards at `paths` (the first ones one more when they do not divide):
+    `sample(shard, i)` gives (key, [(extension, bytes), ...]) in member order. Each shard is written
+    under a .tmp name and renamed when complete, with fixed member times, so it is byte-reproducible."""
+    shards = len(paths)
+    with tqdm(total=images, desc=desc, unit="img", file=sys.stderr, disable=not progress, leave=False) as bar:
+        for s, path in enumerate(paths):
+            tmp = path.with_name(path.name + ".tmp")
+            count = images // shards + (1 if s < images % shards else 0)
+            with tarfile.open(tmp, "w", format=tarfile.USTAR_FORMAT) as tar:
+                for i in range(count):
+                    key, members = sample(s, i)
+                    for ext, data in members:
+                        _add(tar, f"{key}.{ext}", data)
+                    bar.update(1)
+            tmp.replace(path)
+
+
 def photo_shard_pattern(out_dir: str | Path, shards: int = 4) -> str:
     """Brace pattern of the corpus shards in `out_dir`."""
     return str(Path(out_dir) / f"{_STEM}{{{0:06d}..{shards - 1:06d}}}.tar")
@@ -107,21 +127,14 @@ def make_photo_shards(out_dir: str | Path, *, images: int = 300, shards: int = 4
         return paths
     rng = np.random.default_rng([seed, 0x9B07])
     sizes: list[int] = []
-    with tqdm(total=images, desc="benchmark photos", unit="img", file=sys.stderr, disable=not progress,
-              leave=False) as bar:
-        for s, path in enumerate(paths):
-            tmp = path.with_name(path.name + ".tmp")
-            count = images // shards + (1 if s < images % shards else 0)
-            with tarfile.open(tmp, "w", format=tarfile.USTAR_FORMAT) as tar:
-                for i in range(count):
-                    data, meta = _photo(rng, large_share)
-                    key = f"photo-{s:03d}-{i:05d}"
-                    _add(tar, f"{key}.cls", str(meta["label"]).encode())
-                    _add(tar, f"{key}.jpg", data)
-                    _add(tar, f"{key}.json", json.dumps(meta, sort_keys=True).encode())
-                    sizes.append(meta["width"] * meta["height"])
-                    bar.update(1)
-            tmp.replace(path)
+
+    def sample(s: int, i: int) -> tuple[str, list]:
+        data, meta = _photo(rng, large_share)
+        sizes.append(meta["width"] * meta["height"])
+        return f"photo-{s:03d}-{i:05d}", [("cls", str(meta["label"]).encode()), ("jpg", data),
+                                           ("json", json.dumps(meta, sort_keys=True).encode())]
+
+    write_sample_shards(paths, images, sample, desc="benchmark photos", progress=progress)
     px = np.asarray(sizes, np.float64)
     stamp.write_text(json.dumps({"spec": spec, "mean_megapixels": round(float(px.mean()) / 1e6, 3),
                                  "median_megapixels": round(float(np.median(px)) / 1e6, 3),

@@ -15,21 +15,17 @@ from __future__ import annotations
 import io
 import json
 import math
-import sys
-import tarfile
 from pathlib import Path
 
 import numpy as np
 from PIL import Image
-from tqdm import tqdm
 
-from .photos import corpus_is_current
+from .photos import corpus_is_current, write_sample_shards
 
 __all__ = ["SMALL_RGB_SOURCES", "SMALL_GREY_SOURCES", "make_small_photo_shards", "small_photo_shard_pattern",
            "small_photo_size"]
 
 _STEM = "photos-small-"
-_MTIME = 1_700_000_000
 
 #: scikit-image sample photographs the corpus is cut from (colour, then grey).
 SMALL_RGB_SOURCES = ("astronaut", "coffee", "chelsea", "rocket", "immunohistochemistry", "hubble_deep_field",
@@ -109,12 +105,6 @@ def small_photo_shard_pattern(out_dir: str | Path, shards: int = 8) -> str:
     return str(Path(out_dir) / f"{_STEM}{{{0:06d}..{shards - 1:06d}}}.tar")
 
 
-def _add(tar: tarfile.TarFile, name: str, data: bytes) -> None:
-    info = tarfile.TarInfo(name)
-    info.size, info.mtime, info.mode = len(data), _MTIME, 0o644
-    tar.addfile(info, io.BytesIO(data))
-
-
 def make_small_photo_shards(out_dir: str | Path, *, images: int = 320, shards: int = 8, seed: int = 0,
                             progress: bool = True) -> list[Path]:
     """Write `images` re-cut sample photos into `shards` tar shards in `out_dir` (deterministic for a
@@ -137,29 +127,21 @@ def make_small_photo_shards(out_dir: str | Path, *, images: int = 320, shards: i
     names = list(SMALL_RGB_SOURCES + SMALL_GREY_SOURCES)
     rng = np.random.default_rng([seed, 0x5A11])
     sizes, formats = [], []
-    with tqdm(total=images, desc="benchmark photos-small", unit="img", file=sys.stderr, disable=not progress,
-              leave=False) as bar:
-        for s, path in enumerate(paths):
-            tmp = path.with_name(path.name + ".tmp")
-            count = images // shards + (1 if s < images % shards else 0)
-            with tarfile.open(tmp, "w", format=tarfile.USTAR_FORMAT) as tar:
-                for i in range(count):
-                    h, w = small_photo_size(rng)
-                    grey = rng.random() < 0.05
-                    pool = SMALL_GREY_SOURCES if grey else SMALL_RGB_SOURCES
-                    fits = [n for n in pool if min(sources[n].shape[:2]) * _MAX_UPSCALE >= min(h, w)]
-                    name = str(rng.choice(fits or ["retina"]))
-                    arr = _cut(sources[name], h, w, rng)
-                    data, ext, meta = _encode(arr, rng)
-                    key = f"small-{s:03d}-{i:05d}"
-                    meta.update(width=w, height=h, source=name)
-                    _add(tar, f"{key}.cls", str(names.index(name)).encode())
-                    _add(tar, f"{key}.{ext}", data)
-                    _add(tar, f"{key}.json", json.dumps(meta, sort_keys=True).encode())
-                    sizes.append((h, w))
-                    formats.append(ext)
-                    bar.update(1)
-            tmp.replace(path)
+
+    def sample(s: int, i: int) -> tuple[str, list]:
+        h, w = small_photo_size(rng)
+        grey = rng.random() < 0.05
+        pool = SMALL_GREY_SOURCES if grey else SMALL_RGB_SOURCES
+        fits = [n for n in pool if min(sources[n].shape[:2]) * _MAX_UPSCALE >= min(h, w)]
+        name = str(rng.choice(fits or ["retina"]))
+        data, ext, meta = _encode(_cut(sources[name], h, w, rng), rng)
+        meta.update(width=w, height=h, source=name)
+        sizes.append((h, w))
+        formats.append(ext)
+        return f"small-{s:03d}-{i:05d}", [("cls", str(names.index(name)).encode()), (ext, data),
+                                           ("json", json.dumps(meta, sort_keys=True).encode())]
+
+    write_sample_shards(paths, images, sample, desc="benchmark photos-small", progress=progress)
     short = np.asarray([min(hw) for hw in sizes], np.float64)
     stamp.write_text(json.dumps({"spec": spec, "median_short_side": float(np.median(short)),
                                  "short_side_range": [int(short.min()), int(short.max())],
